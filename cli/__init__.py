@@ -1,0 +1,1 @@
+"""Command line, terminal report, JSON output and plots for toothcomb."""
