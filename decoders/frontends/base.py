@@ -1,0 +1,100 @@
+"""What sensor front ends share: the streaming contract and sub-sample interpolation.
+
+A front end turns the samples of one channel into :class:`~toothcomb.decoders.model.Edges`
+with sub-sample timing. It is fed block by block (``process(samples, start)``) and keeps its own
+state across calls, like ``scipy.signal.lfilter`` with ``zi``, so the edges do not depend on
+where the blocks are cut; ``finish()`` flushes what is still pending at the end of the capture.
+
+No front end filters the signal: edge times come straight from interpolating the samples, so no
+filter delay can bias an angle.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Protocol
+
+import numpy as np
+
+from ..model import ChannelLevels, Edges
+
+
+class FrontEnd(Protocol):
+    """The contract of a ``toothcomb.frontends`` plugin."""
+
+    name: str
+
+    def __init__(self, sample_rate: float, levels: ChannelLevels, **options: Any) -> None: ...
+
+    @classmethod
+    def calibrate(
+        cls, probe: np.ndarray, sample_rate: float, levels: ChannelLevels
+    ) -> dict[str, Any]:
+        """Settings for ``__init__`` worked out from the first part of the channel."""
+        ...
+
+    def process(self, samples: np.ndarray, start: int) -> Edges:
+        """Edges completed by this block; ``start`` is the index of ``samples[0]``."""
+        ...
+
+    def finish(self) -> Edges:
+        """Edges still pending at the end of the capture."""
+        ...
+
+
+def cubic_crossing(y: np.ndarray, k: np.ndarray, level: float | np.ndarray) -> np.ndarray:
+    """Fraction of a sample, after ``k``, where the samples cross ``level`` (0 <= f <= 1).
+
+    Fits the cubic through ``y[k-1], y[k], y[k+1], y[k+2]`` (Lagrange form) and finds its root in
+    [0, 1] by Newton iterations started from the linear estimate. Where a neighbour is missing
+    (``k - 1 < 0`` or ``k + 2 >= len(y)``) or the cubic misbehaves, the linear estimate is kept.
+    The crossing lies at ``k + fraction``; the fraction is returned on its own so that adding
+    a block's offset cannot round differently from block to block.
+
+    >>> t = np.arange(8.0)
+    >>> y = np.sin(2 * np.pi * (t - 2.3) / 16)   # rising zero crossing at 2.3
+    >>> round(float(cubic_crossing(y, np.array([2]), 0.0)[0]), 3)
+    0.3
+    """
+    y = np.asarray(y, dtype=float)
+    k = np.asarray(k, dtype=int)
+    lev = np.broadcast_to(np.asarray(level, dtype=float), k.shape)
+    y1 = y[k] - lev
+    y2 = y[k + 1] - lev
+    denom = y2 - y1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        lin = np.where(denom != 0, -y1 / denom, 0.5)
+    lin = np.clip(lin, 0.0, 1.0)
+    ok = (k - 1 >= 0) & (k + 2 < len(y))
+    if not np.any(ok):
+        return lin
+    kk = np.where(ok, k, 1)
+    y0 = y[kk - 1] - lev
+    y3 = y[np.minimum(kk + 2, len(y) - 1)] - lev
+    # Cubic through (-1, y0), (0, y1), (1, y2), (2, y3): p(s) = a + b s + c s^2 + d s^3
+    a = y1
+    b = -y0 / 3 - y1 / 2 + y2 - y3 / 6
+    c = y0 / 2 - y1 + y2 / 2
+    d = -y0 / 6 + y1 / 2 - y2 / 2 + y3 / 6
+    s = lin.copy()
+    for _ in range(6):
+        p = a + s * (b + s * (c + s * d))
+        dp = b + s * (2 * c + s * 3 * d)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            step = np.where(dp != 0, p / dp, 0.0)
+        s = s - step
+    good = ok & np.isfinite(s) & (s >= 0.0) & (s <= 1.0)
+    return np.where(good, s, lin)
+
+
+def linear_crossing(y: np.ndarray, k: np.ndarray, level: np.ndarray) -> np.ndarray:
+    """Fraction of a sample after ``k`` where ``y`` crosses ``level`` (linear interpolation).
+
+    >>> linear_crossing(np.array([0.0, 1.0, 3.0]), np.array([1]), np.array([2.0]))
+    array([0.5])
+    """
+    y1 = y[k]
+    y2 = y[k + 1]
+    denom = y2 - y1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.where(denom != 0, (level - y1) / denom, 0.5)
+    return np.clip(frac, 0.0, 1.0)
