@@ -1,0 +1,382 @@
+"""N-M missing-tooth crank wheels: N equally spaced tooth positions, M consecutive ones missing.
+
+The gap is found from *ratios* of tooth periods, never from fixed time thresholds: the interval
+across the gap spans M + 1 pitches, so it is M + 1 times the mean of its two neighbours even while
+the engine speeds up or slows down (the mean of the neighbours follows a linear speed change).
+
+Decoding then follows the wheel tooth by tooth. Each new interval is compared with the interval
+the wheel says comes next, scaled by a speed prediction extrapolated from the last two pitch
+periods; the cheapest explanation wins among "next tooth", "next tooth after n missing ones"
+(dropout, damaged tooth) and "this edge is not a tooth" (runt pulse, spike). When nothing
+explains an interval, sync is lost, counted, reported, and found again at the next gap.
+
+Sources for the geometry: an N-M wheel has a pitch of 360/N deg and the interval across its gap
+spans M + 1 pitches (60-2: 6 deg pitch, 18 deg across the gap) -- see e.g. Robert Bosch GmbH,
+*Automotive Handbook*, engine management / speed sensors.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import UsageError
+from ..model import Edges
+from ..result import Finding
+from .base import ToothTrack
+
+_NOTATION = re.compile(r"^\s*(\d+)\s*-\s*(\d+)\s*$")
+
+#: tooth period ratio (interval / mean of its neighbours) above which an interval may be a gap
+GAP_RATIO_MIN = 1.6
+#: largest |log(measured / predicted)| accepted for an interval before sync is called lost
+# common practice, no source: about +-45 % of the predicted interval
+ACCEPT_LOG = math.log(1.45)
+#: cost added for calling an edge "not a tooth" or a tooth "missing" (log units)
+EXTRA_PENALTY = 0.12
+MISSING_PENALTY = 0.15
+
+
+@dataclass(frozen=True)
+class MissingToothSpec:
+    """An N-M wheel.
+
+    >>> w = MissingToothSpec(60, 2)
+    >>> w.name, w.pitch_deg, w.teeth, w.gap_deg
+    ('60-2', 6.0, 58, 18.0)
+    """
+
+    #: equally spaced tooth positions (N)
+    positions: int
+    #: consecutive positions without a tooth (M)
+    missing: int
+
+    def __post_init__(self) -> None:
+        if not (2 <= self.positions <= 360):
+            raise UsageError(f"a wheel needs 2 to 360 tooth positions, not {self.positions}")
+        if not (1 <= self.missing < self.positions - 1):
+            raise UsageError(
+                f"a {self.positions}-position wheel can miss 1 to {self.positions - 2} teeth, "
+                f"not {self.missing}"
+            )
+
+    @property
+    def name(self) -> str:
+        return f"{self.positions}-{self.missing}"
+
+    @property
+    def pitch_deg(self) -> float:
+        return 360.0 / self.positions
+
+    @property
+    def teeth(self) -> int:
+        """Teeth actually on the wheel (N - M)."""
+        return self.positions - self.missing
+
+    @property
+    def gap_deg(self) -> float:
+        """Angle between the last tooth before the gap and tooth 1."""
+        return (self.missing + 1) * self.pitch_deg
+
+    def step(self, tooth: int) -> int:
+        """Pitches from ``tooth`` (1-based) to the next tooth on the wheel."""
+        return self.missing + 1 if tooth == self.teeth else 1
+
+    def span(self, tooth: int, n: int) -> int:
+        """Pitches from ``tooth`` to the tooth ``n`` teeth later."""
+        full, rest = divmod(n, self.teeth)
+        total = full * self.positions
+        t = tooth
+        for _ in range(rest):
+            total += self.step(t)
+            t = t % self.teeth + 1
+        return total
+
+
+class MissingToothWheel:
+    """The ``toothcomb.wheels`` plugin for N-M wheels."""
+
+    name = "missing-tooth"
+
+    @staticmethod
+    def parse(text: str) -> MissingToothSpec | None:
+        """``"60-2"`` -> MissingToothSpec(60, 2); None for other notations.
+
+        >>> MissingToothWheel.parse("36-1")
+        MissingToothSpec(positions=36, missing=1)
+        >>> MissingToothWheel.parse("4+1") is None
+        True
+        """
+        m = _NOTATION.match(text)
+        if not m:
+            return None
+        return MissingToothSpec(int(m.group(1)), int(m.group(2)))
+
+    @staticmethod
+    def decoder(spec: MissingToothSpec):  # noqa: ANN205 - returns a bound function
+        return lambda times: decode_teeth(times, spec)
+
+
+# -- gap finding and identification -----------------------------------------------------------
+
+
+def gap_ratios(times: np.ndarray) -> np.ndarray:
+    """Ratio of each interval to the mean of its two neighbours (nan at both ends).
+
+    ``r[i]`` belongs to the interval from ``times[i]`` to ``times[i + 1]``.
+
+    >>> t = np.cumsum([0, 1, 1, 1, 3, 1, 1, 1.0])      # a gap of three pitches
+    >>> gap_ratios(t).round(2).tolist()
+    [nan, 1.0, 0.5, 3.0, 0.5, 1.0, nan]
+    """
+    T = np.diff(np.asarray(times, dtype=float))
+    r = np.full(len(T), np.nan)
+    if len(T) >= 3:
+        r[1:-1] = T[1:-1] / (0.5 * (T[:-2] + T[2:]))
+    return r
+
+
+def gap_candidates(times: np.ndarray, ratio_min: float = GAP_RATIO_MIN) -> np.ndarray:
+    """Intervals that look like a gap: long against both neighbours, neighbours alike."""
+    T = np.diff(np.asarray(times, dtype=float))
+    r = gap_ratios(times)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        alike = np.zeros(len(T), dtype=bool)
+        alike[1:-1] = np.abs(np.log(T[:-2] / T[2:])) < math.log(1.6)
+        return np.flatnonzero((r > ratio_min) & alike)
+
+
+@dataclass(frozen=True)
+class WheelGuess:
+    """An N-M wheel identified from tooth periods, and how sure the guess is."""
+
+    spec: MissingToothSpec
+    #: 0..1: share of gaps at the spacing the guess implies, times share of gap ratios near M+1
+    confidence: float
+    #: gaps seen
+    gaps: int
+    #: median ratio of the gap interval to its neighbours
+    gap_ratio: float
+
+
+def identify(times: np.ndarray) -> WheelGuess | None:
+    """Identify N and M from event times of one direction (tooth centres or leading flanks).
+
+    Returns None when fewer than two gaps are seen or the spacing makes no wheel.
+
+    >>> teeth = [k * 6.0 for k in range(58)]                       # a 60-2 wheel, 6 deg pitch
+    >>> t = np.array([r * 360 + a for r in range(4) for a in teeth]) / 4800.0   # 800 rpm
+    >>> g = identify(t)
+    >>> g.spec.name, round(g.confidence, 2), g.gaps
+    ('60-2', 1.0, 3)
+    """
+    times = np.asarray(times, dtype=float)
+    cand = gap_candidates(times)
+    if len(cand) < 2:
+        return None
+    r = gap_ratios(times)[cand]
+    m = int(np.clip(round(float(np.median(r)) - 1.0), 1, 3))
+    spacing = np.diff(cand)
+    values, counts = np.unique(spacing, return_counts=True)
+    k = int(values[np.argmax(counts)])
+    consistency = float(np.max(counts)) / len(spacing)
+    n = k + m
+    if not (3 <= n <= 360) or m >= n - 1:
+        return None
+    near = float(np.mean(np.abs(r / (m + 1) - 1.0) < 0.25))
+    return WheelGuess(MissingToothSpec(n, m), consistency * near, len(cand), float(np.median(r)))
+
+
+def leading_direction(edges: Edges) -> tuple[int, float]:
+    """For a two-level (Hall) crank signal: the direction of the leading flank, and a score.
+
+    The level held through the gap is the "no tooth" level, held far longer than between any
+    two teeth; the transition that ends it is tooth 1's leading flank. Returns (+1 or -1, share
+    of long levels that end in that direction).
+    """
+    t = edges.times
+    if len(t) < 6:
+        return 1, 0.0
+    dur = np.diff(t)
+    d = edges.direction[1:]
+    score = {}
+    for sign in (1, -1):
+        durations = dur[d == sign]
+        if len(durations) < 9:
+            score[sign] = 0
+            continue
+        # against the median of the 8 nearest levels of the same kind, so that a change of
+        # speed over the capture does not look like a long level
+        win = np.lib.stride_tricks.sliding_window_view(durations, 9)
+        local = np.median(win, axis=1)
+        score[sign] = int(np.count_nonzero(durations[4:-4] > 1.8 * local))
+    total = score[1] + score[-1]
+    best = 1 if score[1] >= score[-1] else -1
+    return best, (score[best] / total if total else 0.0)
+
+
+# -- tooth-by-tooth decoding --------------------------------------------------------------------
+
+
+def decode_teeth(times: np.ndarray, spec: MissingToothSpec) -> ToothTrack:
+    """Follow an N-M wheel through event times of one direction; see the module docstring.
+
+    >>> w = MissingToothSpec(36, 1)
+    >>> t = np.array([r * 360 + k * 10.0 for r in range(3) for k in range(35)]) / 9000.0
+    >>> track = decode_teeth(t, w)
+    >>> len(track.reference_times), track.sync_losses, track.angles[:3].tolist()
+    (2, 0, [0.0, 10.0, 20.0])
+    """
+    times = np.asarray(times, dtype=float)
+    n = len(times)
+    K = spec.teeth
+    out_t: list[float] = []
+    out_a: list[float] = []
+    out_run: list[int] = []
+    out_tooth: list[int] = []
+    out_pitch: list[int] = []
+    refs: list[float] = []
+    findings: list[Finding] = []
+    extra = missing = losses = 0
+    run = -1
+
+    cand = gap_candidates(times)
+    cand_set = np.zeros(max(n - 1, 0), dtype=bool)
+    cand_set[cand] = True
+    ratios = gap_ratios(times)
+
+    i = 0
+    synced = False
+    tooth = 0
+    angle = 0.0
+    p_last = p_prev = 0.0
+    while i < n - 1:
+        if not synced:
+            # next interval that looks like this wheel's gap
+            nxt = cand[cand >= i]
+            nxt = nxt[np.abs(ratios[nxt] / (spec.missing + 1) - 1.0) < 0.3]
+            if len(nxt) == 0:
+                break
+            g = int(nxt[0])
+            i = g + 1  # tooth 1
+            run += 1
+            synced = True
+            tooth = 1
+            angle = 0.0
+            T = np.diff(times[g - 1 : g + 3]) if g + 3 <= n else np.diff(times[g - 1 : g + 2])
+            p_last = p_prev = float(0.5 * (T[0] + T[2])) if len(T) >= 3 else float(T[0])
+            out_t.append(float(times[i]))
+            out_a.append(angle)
+            out_run.append(run)
+            out_tooth.append(tooth)
+            out_pitch.append(0)
+            refs.append(float(times[i]))
+            continue
+
+        # fast path: a whole clean revolution from tooth 1
+        if tooth == 1 and i + K < n:
+            steps = np.ones(K)
+            steps[-1] = spec.missing + 1
+            T = np.diff(times[i : i + K + 1])
+            q = T / steps
+            rel = q[1:] / q[:-1]
+            if abs(math.log(q[0] / p_last)) < 0.25 and np.all(np.abs(np.log(rel)) < 0.25):
+                cum = np.cumsum(steps) * spec.pitch_deg
+                for k in range(K):
+                    tooth_k = k + 2 if k < K - 1 else 1
+                    ang = angle + cum[k]
+                    out_t.append(float(times[i + k + 1]))
+                    out_a.append(float(ang))
+                    out_run.append(run)
+                    out_tooth.append(tooth_k)
+                    out_pitch.append(int(steps[k]))
+                refs.append(float(times[i + K]))
+                angle += 360.0
+                p_prev, p_last = float(q[-2]) if K > 1 else float(q[-1]), float(q[-1])
+                i += K
+                continue
+
+        ratio = min(max(p_last / p_prev, 0.8), 1.25) if p_prev > 0 else 1.0
+        p_pred = p_last * ratio
+        best = None  # (cost, edges consumed, teeth advanced)
+        for skip in (0, 1):
+            if i + 1 + skip >= n:
+                break
+            T = times[i + 1 + skip] - times[i]
+            q = T / p_pred
+            for adv in range(1, K + 1):
+                c = spec.span(tooth, adv)
+                if c > q * 1.6 + 1:
+                    break
+                if adv > 1 and abs(q - c) > 0.3:
+                    continue
+                err = abs(math.log(q / c))
+                cost = err + skip * EXTRA_PENALTY + (adv - 1) * MISSING_PENALTY
+                if best is None or cost < best[0]:
+                    best = (cost, err, skip, adv, c, T)
+        if best is None or best[1] > ACCEPT_LOG:
+            synced = False
+            losses += 1
+            findings.append(
+                Finding(
+                    "warning",
+                    "sync-lost",
+                    f"crank sync lost after tooth {tooth} at {times[i]:.4f} s: the next interval "
+                    f"does not fit the {spec.name} wheel; found again at the next gap",
+                    float(times[i]),
+                )
+            )
+            i += 1
+            continue
+        _, _, skip, adv, c, T = best
+        if skip:
+            extra += skip
+            findings.append(
+                Finding(
+                    "info",
+                    "extra-edge",
+                    f"an edge at {times[i + 1]:.4f} s between crank teeth is not a tooth "
+                    "(runt pulse, spike or noise) and was ignored",
+                    float(times[i + 1]),
+                )
+            )
+        if adv > 1:
+            missing += adv - 1
+            findings.append(
+                Finding(
+                    "warning",
+                    "missing-teeth",
+                    f"{adv - 1} crank tooth event(s) not seen after tooth {tooth} at "
+                    f"{times[i]:.4f} s (dropout or damaged tooth); counted through",
+                    float(times[i]),
+                )
+            )
+        i += 1 + skip
+        for _ in range(adv):
+            tooth = tooth % K + 1
+        angle += c * spec.pitch_deg
+        p_prev, p_last = p_last, float(T / c)
+        out_t.append(float(times[i]))
+        out_a.append(float(angle))
+        out_run.append(run)
+        out_tooth.append(tooth)
+        out_pitch.append(int(c))
+        if tooth == 1:
+            refs.append(float(times[i]))
+
+    return ToothTrack(
+        times=np.asarray(out_t),
+        angles=np.asarray(out_a),
+        run=np.asarray(out_run, dtype=int),
+        tooth=np.asarray(out_tooth, dtype=int),
+        pitches=np.asarray(out_pitch, dtype=int),
+        reference_times=np.asarray(refs),
+        pitch_deg=spec.pitch_deg,
+        extra=extra,
+        missing=missing,
+        sync_losses=losses,
+        findings=tuple(findings),
+    )
