@@ -10,8 +10,8 @@ Times are seconds from the first sample of the capture: sample ``n`` is at ``n /
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass, field
-from typing import Protocol, runtime_checkable
+from dataclasses import dataclass
+from typing import ClassVar, Protocol, runtime_checkable
 
 import numpy as np
 
@@ -137,7 +137,9 @@ class ChannelLevels:
     subsample: int = 0
 
     #: the percentile points that ``percentiles`` holds, in order
-    POINTS: tuple[float, ...] = field(default=(0.1, 1, 5, 25, 50, 75, 95, 99, 99.9), repr=False)
+    POINTS: ClassVar[tuple[float, ...]] = (0.1, 1, 5, 25, 50, 75, 95, 99, 99.9)
+    #: index of the first NaN or infinite sample, None when there is none (or it is not known)
+    first_non_finite: int | None = None
 
     def percentile(self, q: float) -> float:
         """One of the stored percentiles (``q`` must be one of :attr:`POINTS`)."""

@@ -62,7 +62,7 @@ def check_plugin(group: str, name: str, obj: Any) -> Any:
     Traceback (most recent call last):
     ...
     toothcomb.decoders.errors.PluginError: plugin 'broken' in group toothcomb.readers lacks extensions, detect, open
-    """
+    """  # noqa: E501
     missing = [a for a in REQUIRED[group] if not hasattr(obj, a)]
     if missing:
         raise PluginError(f"plugin {name!r} in group {group} lacks {', '.join(missing)}")
@@ -96,7 +96,8 @@ def plugin(group: str, name: str) -> Any:
     """One plugin by name; the error lists the names there are."""
     have = plugins(group)
     if name not in have:
-        raise PluginError(f"no plugin {name!r} in group {group} (there are: {', '.join(sorted(have))})")
+        there = ", ".join(sorted(have))
+        raise PluginError(f"no plugin {name!r} in group {group} (there are: {there})")
     return have[name]
 
 

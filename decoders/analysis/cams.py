@@ -61,7 +61,9 @@ class CamEvents:
         return np.mod((self.rev + s) % 2 * 360.0 + self.angle, 720.0)
 
     def select(self, mask: np.ndarray) -> CamEvents:
-        return CamEvents(self.times[mask], self.direction[mask], self.crank_angle[mask], self.run[mask])
+        return CamEvents(
+            self.times[mask], self.direction[mask], self.crank_angle[mask], self.run[mask]
+        )
 
 
 def locate(edges: Edges, timeline: CrankTimeline) -> tuple[CamEvents, int]:
@@ -103,7 +105,10 @@ def vr_centre_direction(edges: Edges) -> int:
         return -1
     before = np.diff(t)
     after_dir = d[1:]
-    med = {s: np.median(before[after_dir == s]) if np.any(after_dir == s) else np.inf for s in (1, -1)}
+    med = {
+        s: np.median(before[after_dir == s]) if np.any(after_dir == s) else np.inf
+        for s in (1, -1)
+    }
     return 1 if med[1] < med[-1] else -1
 
 

@@ -61,4 +61,4 @@ def angle_stats(angles: np.ndarray, period: float = 360.0) -> AngleStats:
     std = float(np.std(dev, ddof=1)) if len(a) > 1 else 0.0
     if mean >= period - 1e-9:
         mean = 0.0
-    return AngleStats(mean, std, mean + float(dev.min()), mean + float(dev.max()), int(len(a)))
+    return AngleStats(mean, std, mean + float(dev.min()), mean + float(dev.max()), len(a))

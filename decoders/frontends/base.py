@@ -14,6 +14,7 @@ from __future__ import annotations
 from typing import Any, Protocol
 
 import numpy as np
+from scipy.ndimage import median_filter
 
 from ..model import ChannelLevels, Edges
 
@@ -98,3 +99,25 @@ def linear_crossing(y: np.ndarray, k: np.ndarray, level: np.ndarray) -> np.ndarr
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(denom != 0, (level - y1) / denom, 0.5)
     return np.clip(frac, 0.0, 1.0)
+
+
+def despike(x: np.ndarray, size: int) -> np.ndarray:
+    """Centred running median of ``size`` samples (odd; 1 returns ``x`` unchanged).
+
+    Removes impulses up to ``size // 2`` samples long (ignition spikes) while leaving any
+    monotone stretch of ``size`` samples exactly as it was: the median of a monotone run is its
+    middle sample. A flank or a zero crossing is monotone around its own time, so its
+    interpolated time does not move, and the filter is centred, so it delays nothing. The first
+    and last ``size // 2`` samples are copied, not filtered; callers do not decide anything on
+    them.
+
+    >>> despike(np.array([0.0, 0, 9, 0, 0, 1, 2, 3, 4, 5]), 3).tolist()
+    [0.0, 0.0, 0.0, 0.0, 0.0, 1.0, 2.0, 3.0, 4.0, 5.0]
+    """
+    if size <= 1 or len(x) < size:
+        return x
+    half = size // 2
+    out = median_filter(x, size=size, mode="nearest")
+    out[:half] = x[:half]
+    out[len(x) - half :] = x[len(x) - half :]
+    return out

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import linear_crossing
+from .base import despike, linear_crossing
 
 #: time a Hall output needs to switch, covered by the step window W (seconds)
 # common practice, no source: sensor output rise/fall times of a few microseconds plus an
@@ -71,6 +71,7 @@ class HallFrontEnd:
         window: int | None = None,
         plateau: int = 3,
         max_run: int | None = None,
+        despike: int = 1,
     ) -> None:
         self.sample_rate = float(sample_rate)
         #: step height (channel units) a flank must exceed
@@ -81,7 +82,10 @@ class HallFrontEnd:
         self.plateau = max(1, int(plateau))
         #: a candidate run longer than this is a slow swing, not a flank
         self.max_run = int(max_run) if max_run is not None else 4 * self.window + 16
-        self._keep = self.window + self.plateau + self.max_run + 4
+        #: running-median length that removes spikes before detection (1: none)
+        self.despike = int(despike) | 1
+        self._half = self.despike // 2
+        self._keep = self.window + self.plateau + self.max_run + 4 + 2 * self._half
         self._buf = np.empty(0)
         self._buf_start = 0
         self._done = 0  # runs starting before this global index have been handled
@@ -118,9 +122,14 @@ class HallFrontEnd:
             window, edges = best
             opts["window"] = window
             opts["threshold"] = 0.4 * float(np.median(edges.strength))
+            # the shortest level between real flanks (pairs closer than two windows are the two
+            # halves of a spike) bounds how many samples can be averaged on each side
             gaps = np.diff(edges.times) * sample_rate
-            shortest = float(np.percentile(gaps, 2)) if len(gaps) else 0.0
+            gaps = gaps[gaps > 2 * window]
+            shortest = float(np.percentile(gaps, 10)) if len(gaps) else 0.0
             opts["plateau"] = int(np.clip((shortest - window) // 3, 1, 3))
+            # a running median removes ignition spikes; it must be shorter than any real level
+            opts["despike"] = 5 if shortest >= 10 else 3 if shortest >= 5 else 1
         return opts
 
     def process(self, samples: np.ndarray, start: int) -> Edges:
@@ -141,11 +150,12 @@ class HallFrontEnd:
 
     # -- internals -------------------------------------------------------------------------
 
-    def _scan(self, buf: np.ndarray, final: bool) -> Edges:
-        W, w = self.window, self.plateau
-        n = len(buf)
-        if n <= W + 2 * w + 1:
+    def _scan(self, raw: np.ndarray, final: bool) -> Edges:
+        W, w, half = self.window, self.plateau, self._half
+        n = len(raw)
+        if n <= W + 2 * w + 1 + 2 * half:
             return Edges.empty()
+        buf = despike(raw, self.despike)
         d = buf[W:] - buf[:-W]  # d[i] belongs to buf index i + W
         parts = []
         for sign in (1, -1):
@@ -160,9 +170,9 @@ class HallFrontEnd:
         s, e, sign = s[order], e[order], sign[order]
         g = self._buf_start
         # a run is complete when the sample after it and the post-flank plateau are here
-        complete = (e + w < n - 1) | final
+        complete = (e + w + half < n - 1) | final
         fresh = s + g >= self._done
-        enough = (s - W - w >= 0) & (e + w < n)
+        enough = (s - W - w - half >= 0) & (e + w < n)
         sel = complete & fresh & enough
         # runs that are complete but lack history (start of capture) are given up for good
         if np.any(complete & fresh):

@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import cubic_crossing
+from .base import cubic_crossing, despike
 
 
 class VrFrontEnd:
@@ -35,7 +35,7 @@ class VrFrontEnd:
     >>> lv = ChannelLevels("ch0", 5000, -1, 1, 0, 0.7, (-1, -1, -1, -.7, 0, .7, 1, 1, 1), 1e-3, 0)
     >>> fe = VrFrontEnd(fs, lv)
     >>> e = Edges.concat([fe.process(x, 0), fe.finish()])
-    >>> int(e.direction[0]), round(float(e.times[0]) * 1e6, 2)   # falling crossing at (pi-0.3)/(2 pi 100)
+    >>> int(e.direction[0]), round(float(e.times[0]) * 1e6, 2)   # falling at (pi - 0.3) / (200 pi)
     (-1, 4522.54)
     """
 
@@ -51,6 +51,7 @@ class VrFrontEnd:
         fraction: float = 0.3,
         envelope: float | None = None,
         decay: float = 0.8,
+        despike: int = 1,
     ) -> None:
         self.sample_rate = float(sample_rate)
         #: the signal's zero (a DC-coupled instrument may add an offset)
@@ -64,6 +65,9 @@ class VrFrontEnd:
         self.envelope = float(envelope) if envelope is not None else max(half_span, self.floor)
         #: envelope factor per insignificant half-wave
         self.decay = float(decay)
+        #: running-median length that removes spikes before detection (1: none)
+        self.despike = int(despike) | 1
+        self._half = self.despike // 2
         self._tail = np.empty(0)
         self._tail_start = 0
         self._next_k = 0  # first global crossing index not yet handled
@@ -82,7 +86,15 @@ class VrFrontEnd:
         probe = np.asarray(probe, dtype=float)
         if len(probe) == 0:
             return {}
-        return {"envelope": float(np.percentile(np.abs(probe - levels.mean), 99))}
+        envelope = float(np.percentile(np.abs(probe - levels.mean), 99))
+        first = cls(sample_rate, levels, envelope=envelope)
+        edges = Edges.concat([first.process(probe, 0), first.finish()])
+        opts: dict[str, Any] = {"envelope": envelope}
+        if len(edges) >= 4:
+            # a running median removes ignition spikes; it must be short against a half-wave
+            half_wave = float(np.percentile(np.diff(edges.times), 10)) * sample_rate
+            opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
+        return opts
 
     def process(self, samples: np.ndarray, start: int) -> Edges:
         y = np.asarray(samples, dtype=float) - self.offset
@@ -92,7 +104,7 @@ class VrFrontEnd:
             self._next_k = max(self._next_k, start)
         buf = np.concatenate((self._tail, y)) if len(self._tail) else y
         out = self._scan(buf, final=False)
-        keep = min(3, len(buf))
+        keep = min(4 + 2 * self._half, len(buf))
         self._tail = buf[len(buf) - keep :].copy()
         self._tail_start += len(buf) - keep
         return out
@@ -139,23 +151,26 @@ class VrFrontEnd:
                 strength.append(peak + self._last_peak[-sign])
             self._state = sign
             self._last_peak[sign] = peak
-            self.envelope = 0.5 * (self.envelope + peak)
+            # a spike that got through must not lift the threshold over the next real teeth
+            self.envelope = 0.5 * (self.envelope + min(peak, 4.0 * self.envelope))
         else:
             self.envelope = max(self.envelope * self.decay, self.floor)
 
-    def _scan(self, buf: np.ndarray, final: bool) -> Edges:
+    def _scan(self, raw: np.ndarray, final: bool) -> Edges:
         g = self._tail_start
-        n = len(buf)
+        n = len(raw)
         if n < 2:
             return Edges.empty()
+        half = self._half
+        buf = despike(raw, self.despike)
         positive = buf > 0.0
         kk = np.flatnonzero(positive[:-1] != positive[1:])
-        limit = n - 2 if final else n - 3
+        limit = n - 2 if final else n - 3 - half
         kk = kk[(kk + g >= self._next_k) & (kk <= limit)]
         # samples that can be folded into half-wave peaks now: up to the last one that no
         # pending crossing could still split
         a = self._scanned - g
-        b = n if final else n - 1  # exclusive
+        b = n if final else n - 1 - half  # exclusive
         if len(kk):
             self._next_k = int(kk[-1]) + g + 1
         pos = (kk + g) + cubic_crossing(buf, kk, 0.0) if len(kk) else np.empty(0)

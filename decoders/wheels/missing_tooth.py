@@ -116,7 +116,7 @@ class MissingToothWheel:
         return MissingToothSpec(int(m.group(1)), int(m.group(2)))
 
     @staticmethod
-    def decoder(spec: MissingToothSpec):  # noqa: ANN205 - returns a bound function
+    def decoder(spec: MissingToothSpec):
         return lambda times: decode_teeth(times, spec)
 
 
