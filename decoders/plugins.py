@@ -58,11 +58,12 @@ def check_plugin(group: str, name: str, obj: Any) -> Any:
 
     >>> class Broken:
     ...     name = "broken"
-    >>> check_plugin(READERS, "broken", Broken)
-    Traceback (most recent call last):
-    ...
-    toothcomb.decoders.errors.PluginError: plugin 'broken' in group toothcomb.readers lacks extensions, detect, open
-    """  # noqa: E501
+    >>> try:
+    ...     check_plugin(READERS, "broken", Broken)
+    ... except PluginError as e:
+    ...     print(e)
+    plugin 'broken' in group toothcomb.readers lacks extensions, detect, open
+    """
     missing = [a for a in REQUIRED[group] if not hasattr(obj, a)]
     if missing:
         raise PluginError(f"plugin {name!r} in group {group} lacks {', '.join(missing)}")

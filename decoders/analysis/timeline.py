@@ -41,7 +41,7 @@ class CrankTimeline:
     >>> tl = CrankTimeline(decode_teeth(t, MissingToothSpec(36, 1)), max_pitches=2)
     >>> look = tl.angle_at(np.array([400.0 / 9000.0, 0.001]))
     >>> look.angle.round(6).tolist(), look.run.tolist()     # 0.001 s is before the first reference
-    [[40.0, nan], [0, -1]]
+    ([40.0, nan], [0, -1])
     """
 
     def __init__(self, track: ToothTrack, max_pitches: int) -> None:
