@@ -46,7 +46,7 @@ def angle_stats(angles: np.ndarray, period: float = 360.0) -> AngleStats:
 
     >>> s = angle_stats(np.array([359.5, 0.5, 359.7, 0.3]))
     >>> round(s.mean, 6) % 360, round(s.std, 4), round(s.min, 4), round(s.max, 4), s.n
-    (0.0, 0.4123, -0.5, 0.5, 4)
+    (0.0, 0.4761, -0.5, 0.5, 4)
     """
     a = np.asarray(angles, dtype=float)
     if len(a) == 0:
