@@ -91,11 +91,17 @@ def look_at_channel(
         elif sharp >= SHARP_HALL:
             kind = "hall"
             conf = min(1.0, 0.5 + (sharp - SHARP_HALL))
-            why = f"its steps are sharp ({sharp:.0%} of a step within {SHARP_SPAN_S * 1e6:.0f} us)"
+            why = (
+                f"its steps are sharp ({min(sharp, 1.0):.0%} of a step within "
+                f"{SHARP_SPAN_S * 1e6:.0f} us): a Hall or digital sensor"
+            )
         else:
             kind = "vr"
             conf = min(1.0, 0.5 + (SHARP_HALL - sharp))
-            why = f"it swings smoothly ({sharp:.0%} of a swing within {SHARP_SPAN_S * 1e6:.0f} us)"
+            why = (
+                f"it swings smoothly (only {sharp:.0%} of a swing within "
+                f"{SHARP_SPAN_S * 1e6:.0f} us): a VR sensor"
+            )
     else:
         kind, conf, why = hint, 1.0, "sensor kind given by the user"
     if kind == "hall":
