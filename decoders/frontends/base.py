@@ -121,3 +121,17 @@ def despike(x: np.ndarray, size: int) -> np.ndarray:
     out[:half] = x[:half]
     out[len(x) - half :] = x[len(x) - half :]
     return out
+
+
+def has_spikes(x: np.ndarray, height: float) -> bool:
+    """True when ``x`` holds impulses of at least ``height`` lasting one or two samples: samples
+    that stand out from the running median of five around them.
+
+    >>> x = np.zeros(100); x[40] = 3.0
+    >>> has_spikes(x, 1.0), has_spikes(np.sin(np.arange(100) / 10), 1.0)
+    (True, False)
+    """
+    x = np.asarray(x, dtype=float)
+    if len(x) < 5 or not height > 0:
+        return False
+    return bool(np.any(np.abs(x - despike(x, 5)) > height))

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import despike, linear_crossing
+from .base import despike, has_spikes, linear_crossing
 
 #: time a Hall output needs to switch, covered by the step window W (seconds)
 # common practice, no source: sensor output rise/fall times of a few microseconds plus an
@@ -128,8 +128,10 @@ class HallFrontEnd:
             gaps = gaps[gaps > 2 * window]
             shortest = float(np.percentile(gaps, 10)) if len(gaps) else 0.0
             opts["plateau"] = int(np.clip((shortest - window) // 3, 1, 3))
-            # a running median removes ignition spikes; it must be shorter than any real level
-            opts["despike"] = 5 if shortest >= 10 else 3 if shortest >= 5 else 1
+            # a running median removes ignition spikes (only where there are any); it must be
+            # shorter than any real level
+            if has_spikes(probe, 0.3 * float(np.median(edges.strength))):
+                opts["despike"] = 5 if shortest >= 10 else 3 if shortest >= 5 else 1
         return opts
 
     def process(self, samples: np.ndarray, start: int) -> Edges:
@@ -184,31 +186,63 @@ class HallFrontEnd:
         if len(s) == 0:
             return Edges.empty()
         ar = np.arange(w)
-        pre = buf[(s - W - w + 1)[:, None] + ar[None, :]]
-        post = buf[(e + 1)[:, None] + ar[None, :]]
-        if w >= 3:
-            lo, hi = np.median(pre, axis=1), np.median(post, axis=1)
-        else:
-            lo, hi = pre.mean(axis=1), post.mean(axis=1)
+        pre_i = (s - W - w + 1)[:, None] + ar[None, :]
+        post_i = (e + 1)[:, None] + ar[None, :]
+        level = _median if w >= 3 else _mean
+        lo, hi = level(buf[pre_i]), level(buf[post_i])
         step = (hi - lo) * sign
         keep = step > self.threshold
         s, e, sign, lo, hi, step = s[keep], e[keep], sign[keep], lo[keep], hi[keep], step[keep]
+        pre_i, post_i = pre_i[keep], post_i[keep]
         if len(s) == 0:
             return Edges.empty()
+        # levels as recorded, unless a spike sits in them (then the cleaned ones)
+        lo_raw, hi_raw = level(raw[pre_i]), level(raw[post_i])
+        clean = (np.abs(lo_raw - lo) < 0.1 * step) & (np.abs(hi_raw - hi) < 0.1 * step)
+        lo = np.where(clean, lo_raw, lo)
+        hi = np.where(clean, hi_raw, hi)
         mid = 0.5 * (lo + hi)
         # the flank: last crossing of the midpoint inside [s - W, e + 1]
         span = int(np.max(e - s)) + W + 2
         idx = (s - W)[:, None] + np.arange(span)[None, :]
         inside = idx <= (e + 1)[:, None]
         idx = np.minimum(idx, n - 1)
-        above = (buf[idx] - mid[:, None]) * sign[:, None] >= 0
-        cross = ~above[:, :-1] & above[:, 1:] & inside[:, 1:]
-        has = cross.any(axis=1)
-        last = span - 2 - np.argmax(cross[:, ::-1], axis=1)
-        k = (s - W) + last
-        k = np.where(has, k, s - 1)
-        pos = (k + g) + linear_crossing(buf, k, mid)
+        # the time comes from the samples as recorded (the running median only found the flank
+        # and measured the levels); where a spike sits right on the flank, from the cleaned ones
+        k_raw, ok_raw = _last_crossing(raw, idx, inside, mid, sign, s, W)
+        k_med, _ = _last_crossing(buf, idx, inside, mid, sign, s, W)
+        pos_raw = (k_raw + g) + linear_crossing(raw, k_raw, mid)
+        pos_med = (k_med + g) + linear_crossing(buf, k_med, mid)
+        pos = np.where(ok_raw, pos_raw, pos_med)
         return Edges(pos / self.sample_rate, sign, step)
+
+
+def _median(x: np.ndarray) -> np.ndarray:
+    return np.median(x, axis=1)
+
+
+def _mean(x: np.ndarray) -> np.ndarray:
+    return x.mean(axis=1)
+
+
+def _last_crossing(
+    x: np.ndarray,
+    idx: np.ndarray,
+    inside: np.ndarray,
+    mid: np.ndarray,
+    sign: np.ndarray,
+    s: np.ndarray,
+    W: int,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per flank: the sample after which ``x`` last crosses ``mid`` in the flank's direction
+    inside its search region, and whether there was such a crossing."""
+    above = (x[idx] - mid[:, None]) * sign[:, None] >= 0
+    cross = ~above[:, :-1] & above[:, 1:] & inside[:, 1:]
+    has = cross.any(axis=1)
+    span = idx.shape[1]
+    last = span - 2 - np.argmax(cross[:, ::-1], axis=1)
+    k = np.where(has, (s - W) + last, s - 1)
+    return k, has
 
 
 def default_window(sample_rate: float) -> int:

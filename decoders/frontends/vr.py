@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import cubic_crossing, despike
+from .base import cubic_crossing, despike, has_spikes
 
 
 class VrFrontEnd:
@@ -86,11 +86,15 @@ class VrFrontEnd:
         probe = np.asarray(probe, dtype=float)
         if len(probe) == 0:
             return {}
-        envelope = float(np.percentile(np.abs(probe - levels.mean), 99))
+        # start from the amplitude at the start: a capture that begins slow (cranking) and
+        # speeds up must not have its first teeth judged against the later, larger swings
+        head = probe[: max(2000, int(0.05 * sample_rate))]
+        envelope = float(np.max(np.abs(head - levels.mean)))
         first = cls(sample_rate, levels, envelope=envelope)
         edges = Edges.concat([first.process(probe, 0), first.finish()])
         opts: dict[str, Any] = {"envelope": envelope}
-        if len(edges) >= 4:
+        spike = 0.3 * float(np.median(edges.strength)) if len(edges) else 0.0
+        if len(edges) >= 4 and has_spikes(probe - levels.mean, spike):
             # a running median removes ignition spikes; it must be short against a half-wave
             half_wave = float(np.percentile(np.diff(edges.times), 10)) * sample_rate
             opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
@@ -171,9 +175,16 @@ class VrFrontEnd:
         # pending crossing could still split
         a = self._scanned - g
         b = n if final else n - 1 - half  # exclusive
+        # every crossing up to the limit has been looked at, with or without a find
+        self._next_k = max(self._next_k, g + limit + 1)
         if len(kk):
-            self._next_k = int(kk[-1]) + g + 1
-        pos = (kk + g) + cubic_crossing(buf, kk, 0.0) if len(kk) else np.empty(0)
+            # the time comes from the samples as recorded (the running median only found the
+            # crossing); where they do not cross there (a spike on it), from the cleaned ones
+            same = (raw[kk] > 0.0) != (raw[kk + 1] > 0.0)
+            frac = np.where(same, cubic_crossing(raw, kk, 0.0), cubic_crossing(buf, kk, 0.0))
+            pos = (kk + g) + frac
+        else:
+            pos = np.empty(0)
         absx = np.abs(buf[a:b]) if b > a else np.empty(0)
         bnd = np.clip(kk - a + 1, 0, len(absx))
         starts = np.concatenate(([0], bnd))
