@@ -17,6 +17,7 @@ sigma rather than the smaller residual a local fit leaves.
 from __future__ import annotations
 
 import numpy as np
+from scipy.interpolate import CubicSpline
 from scipy.signal import savgol_coeffs, savgol_filter
 
 from ..result import JitterStats
@@ -101,7 +102,9 @@ def crank_jitter(track: ToothTrack, half_window: int | None = None) -> JitterSta
         grid_i = np.rint(track.angles[idx] / pitch).astype(int)
         grid_i -= grid_i[0]
         full = np.arange(grid_i[-1] + 1)
-        tf = np.interp(full, grid_i, t)
+        # positions with no event (the gap, missing teeth) are filled smoothly, so the fill
+        # does not look like jitter to the local fit
+        tf = CubicSpline(grid_i, t)(full)
         w = _window(len(full), half)
         if w < 5:
             continue
