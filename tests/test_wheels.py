@@ -23,7 +23,7 @@ def tooth_times(spec: MissingToothSpec, revs: float, angle_of_t, start_deg: floa
     crank angle (deg) at time t is ``angle_of_t(t)`` (monotone), found by bisection."""
     pitch = spec.pitch_deg
     angles = []
-    for r in range(int(math.ceil(revs)) + 1):
+    for r in range(math.ceil(revs) + 1):
         for k in range(spec.teeth):
             a = r * 360.0 + k * pitch - start_deg
             if 0 < a < revs * 360.0:
@@ -103,7 +103,7 @@ def test_gap_ratio_holds_through_cranking_ripple():
 
 def test_missing_and_extra_edges_are_counted_not_fatal():
     spec = MissingToothSpec(36, 1)
-    t, angles = tooth_times(spec, 6, lambda t: 6.0 * 1500 * t)
+    t, _angles = tooth_times(spec, 6, lambda t: 6.0 * 1500 * t)
     keep = np.ones(len(t), bool)
     keep[50] = False  # a damaged tooth: no event
     keep[120:126] = False  # a dropout: six events lost
