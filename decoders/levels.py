@@ -1,0 +1,281 @@
+"""The level-statistics pass: one streaming read of a capture that measures every channel.
+
+Front ends place their thresholds from these figures and ``describe`` prints them. For each
+channel:
+
+- ``n``, ``minimum``, ``maximum``, ``mean``, ``std`` (population, ddof 0): exact, over the finite
+  samples; blocks are combined with the pairwise update of Chan, Golub & LeVeque (1979), which
+  stays accurate on long captures with a large offset;
+- ``percentiles`` at :attr:`ChannelLevels.POINTS`: from a deterministic subsample, every k-th
+  sample by its index in the capture, ``k = max(1, ceil(n_samples / 2_000_000))``;
+- ``noise``: the median of ``|x[i] - x[i-1]|`` over the subsample positions, divided by
+  ``0.6745 * sqrt(2)`` (for white Gaussian noise this is its standard deviation);
+- ``clipped_fraction``: the share of samples that sit exactly at the channel's minimum or maximum,
+  counting each end only when at least 0.1 % of the samples sit there (a flat top), else 0.0;
+- ``non_finite`` and ``first_non_finite``: NaN and infinite samples are counted and skipped.
+
+Samples are regrouped into fixed cells of :data:`CELL` samples by their index in the capture, so
+every figure is bit-for-bit the same whatever block size the source is read with.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+
+import numpy as np
+
+from .errors import SignalError
+from .model import DEFAULT_BLOCK_SIZE, CaptureSource, ChannelLevels
+
+__all__ = ["CELL", "SUBSAMPLE_TARGET", "check_finite", "measure_levels", "subsample_step"]
+
+#: samples per internal cell (cells start at multiples of this capture index)
+CELL = 1 << 16
+#: the subsample for percentiles and noise holds at most about this many samples
+SUBSAMPLE_TARGET = 2_000_000
+#: an extreme value counts as clipping when at least this share of the samples sit at it
+CLIP_SHARE = 1e-3
+#: median absolute deviation of a standard normal (0.6745) times sqrt(2) for a difference of two
+NOISE_DIVISOR = 0.6745 * math.sqrt(2.0)
+
+Progress = Callable[[int, int], None]
+
+
+def subsample_step(n_samples: int) -> int:
+    """Every how many samples the percentile subsample takes one.
+
+    >>> subsample_step(1_000_000), subsample_step(2_000_001), subsample_step(0)
+    (1, 2, 1)
+    """
+    return max(1, math.ceil(n_samples / SUBSAMPLE_TARGET))
+
+
+class _Accumulator:
+    """Running figures of every channel; fed whole cells in capture order."""
+
+    def __init__(self, n_channels: int, step: int) -> None:
+        c = n_channels
+        self.step = step
+        self.n = np.zeros(c, dtype=np.int64)
+        self.mean = np.zeros(c)
+        self.m2 = np.zeros(c)
+        self.lo = np.full(c, np.inf)
+        self.hi = np.full(c, -np.inf)
+        self.n_lo = np.zeros(c, dtype=np.int64)
+        self.n_hi = np.zeros(c, dtype=np.int64)
+        self.bad = np.zeros(c, dtype=np.int64)
+        self.first_bad = np.full(c, -1, dtype=np.int64)
+        self.sub: list[np.ndarray] = []
+        self.diffs: list[np.ndarray] = []
+        self.prev: np.ndarray | None = None
+
+    def cell(self, start: int, data: np.ndarray) -> None:
+        """Add samples ``data`` (n, c) whose first one is capture sample ``start``."""
+        xt = np.ascontiguousarray(data.T)  # channels as rows: sums along rows are pairwise
+        finite = np.isfinite(xt)
+        all_finite = bool(finite.all())
+        m = xt.shape[1]
+        if all_finite:
+            cnt = np.full(xt.shape[0], m, dtype=np.int64)
+            mean_b = xt.sum(axis=1) / m
+            dev = xt - mean_b[:, None]
+            m2_b = (dev * dev).sum(axis=1)
+            lo_b = xt.min(axis=1)
+            hi_b = xt.max(axis=1)
+        else:
+            cnt = finite.sum(axis=1)
+            nbad = m - cnt
+            for j in np.flatnonzero((nbad > 0) & (self.first_bad < 0)):
+                self.first_bad[j] = start + int(np.argmin(finite[j]))
+            self.bad += nbad
+            safe = np.maximum(cnt, 1)
+            mean_b = np.where(finite, xt, 0.0).sum(axis=1) / safe
+            dev = np.where(finite, xt - mean_b[:, None], 0.0)
+            m2_b = (dev * dev).sum(axis=1)
+            lo_b = np.where(finite, xt, np.inf).min(axis=1)
+            hi_b = np.where(finite, xt, -np.inf).max(axis=1)
+        if all_finite:
+            n_lo_b = (xt == lo_b[:, None]).sum(axis=1)
+            n_hi_b = (xt == hi_b[:, None]).sum(axis=1)
+        else:
+            n_lo_b = ((xt == lo_b[:, None]) & finite).sum(axis=1)
+            n_hi_b = ((xt == hi_b[:, None]) & finite).sum(axis=1)
+        self._combine(cnt, mean_b, m2_b)
+        self._extremes(lo_b, n_lo_b, hi_b, n_hi_b)
+        self._subsample(start, data)
+
+    def _combine(self, n_b: np.ndarray, mean_b: np.ndarray, m2_b: np.ndarray) -> None:
+        # Chan, Golub & LeVeque (1979), pairwise update of mean and sum of squared deviations
+        n_a = self.n
+        n = n_a + n_b
+        has = n > 0
+        safe = np.where(has, n, 1)
+        delta = mean_b - self.mean
+        frac = np.where(has, n_b / safe, 0.0)
+        mean = self.mean + delta * frac
+        m2 = self.m2 + m2_b + delta * delta * (n_a * frac)
+        take = n_b > 0
+        self.mean = np.where(take, mean, self.mean)
+        self.m2 = np.where(take, m2, self.m2)
+        self.n = n
+
+    def _extremes(
+        self, lo_b: np.ndarray, n_lo_b: np.ndarray, hi_b: np.ndarray, n_hi_b: np.ndarray
+    ) -> None:
+        same_lo = np.where(lo_b == self.lo, self.n_lo + n_lo_b, self.n_lo)
+        self.n_lo = np.where(lo_b < self.lo, n_lo_b, same_lo)
+        self.lo = np.minimum(self.lo, lo_b)
+        same_hi = np.where(hi_b == self.hi, self.n_hi + n_hi_b, self.n_hi)
+        self.n_hi = np.where(hi_b > self.hi, n_hi_b, same_hi)
+        self.hi = np.maximum(self.hi, hi_b)
+
+    def _subsample(self, start: int, data: np.ndarray) -> None:
+        first = (-start) % self.step
+        idx = np.arange(first, data.shape[0], self.step)
+        if idx.size:
+            self.sub.append(data[idx])
+            before = np.empty((idx.size, data.shape[1]))
+            inner = idx >= 1
+            before[inner] = data[idx[inner] - 1]
+            if not inner[0]:
+                before[0] = self.prev if self.prev is not None else np.nan
+            with np.errstate(invalid="ignore"):
+                self.diffs.append(np.abs(data[idx] - before))
+        self.prev = data[-1].copy()
+
+    def result(self, names: tuple[str, ...]) -> tuple[ChannelLevels, ...]:
+        points = ChannelLevels.POINTS
+        c = len(names)
+        sub = np.concatenate(self.sub) if self.sub else np.empty((0, c))
+        diffs = np.concatenate(self.diffs) if self.diffs else np.empty((0, c))
+        out = []
+        for j, name in enumerate(names):
+            n = int(self.n[j])
+            v = sub[:, j]
+            v = v[np.isfinite(v)]
+            d = diffs[:, j]
+            d = d[np.isfinite(d)]
+            if n == 0:
+                lo = hi = mean = std = math.nan
+                clipped = 0.0
+            else:
+                lo, hi = float(self.lo[j]), float(self.hi[j])
+                mean = float(self.mean[j])
+                std = math.sqrt(max(float(self.m2[j]), 0.0) / n)
+                if lo == hi:  # a constant channel: exact, without rounding residue
+                    mean, std = lo, 0.0
+                need = CLIP_SHARE * n
+                at_lo = int(self.n_lo[j]) if self.n_lo[j] >= need else 0
+                at_hi = int(self.n_hi[j]) if self.n_hi[j] >= need else 0
+                clipped = (at_lo if lo == hi else at_lo + at_hi) / n
+            if v.size:
+                pct = tuple(float(p) for p in np.percentile(v, points))
+            else:
+                pct = (math.nan,) * len(points)
+            noise = float(np.median(d)) / NOISE_DIVISOR if d.size else math.nan
+            first_bad = int(self.first_bad[j])
+            out.append(
+                ChannelLevels(
+                    name=name,
+                    n=n,
+                    minimum=lo,
+                    maximum=hi,
+                    mean=mean,
+                    std=std,
+                    percentiles=pct,
+                    noise=noise,
+                    clipped_fraction=clipped,
+                    non_finite=int(self.bad[j]),
+                    subsample=int(v.size),
+                    first_non_finite=first_bad if first_bad >= 0 else None,
+                )
+            )
+        return tuple(out)
+
+
+def measure_levels(
+    source: CaptureSource,
+    block_size: int = DEFAULT_BLOCK_SIZE,
+    progress: Progress | None = None,
+) -> tuple[ChannelLevels, ...]:
+    """Measure every channel of ``source`` in one streaming pass (see the module docstring).
+
+    ``n`` is the number of finite samples the statistics were taken over; ``non_finite`` counts
+    the others. ``progress(done, total)`` is called after each block with samples read so far.
+    The result does not depend on ``block_size``.
+
+    >>> import numpy as np, os, tempfile
+    >>> from toothcomb.decoders.readers import open_capture
+    >>> from toothcomb.decoders.readers.write import write_capture
+    >>> path = os.path.join(tempfile.mkdtemp(), "square.h5")
+    >>> square = np.where(np.arange(10_000) % 100 < 50, 0.5, 4.5)[:, None]
+    >>> write_capture(path, square, 10_000.0, ["crank"])
+    >>> with open_capture(path) as src:
+    ...     (lv,) = measure_levels(src, block_size=3000)
+    >>> lv.minimum, lv.maximum, lv.mean, lv.std, lv.percentile(50), lv.clipped_fraction
+    (0.5, 4.5, 2.5, 2.0, 2.5, 1.0)
+    """
+    info = source.info
+    c = info.n_channels
+    acc = _Accumulator(c, subsample_step(info.n_samples))
+    total = info.n_samples
+    pending: list[np.ndarray] = []
+    have = 0
+    cell_start = 0
+    for block in source.blocks(block_size):
+        data = np.asarray(block.data, dtype=np.float64)
+        if data.ndim != 2 or data.shape[1] != c:
+            raise SignalError(
+                f"{info.path}: a block of shape {data.shape} does not fit {c} channel(s); the "
+                "reader is broken"
+            )
+        i = 0
+        n = data.shape[0]
+        while i < n:
+            take = min(CELL - have, n - i)
+            pending.append(data[i : i + take])
+            have += take
+            i += take
+            if have == CELL:
+                cell = pending[0] if len(pending) == 1 else np.concatenate(pending)
+                acc.cell(cell_start, cell)
+                cell_start += CELL
+                pending, have = [], 0
+        if progress is not None:
+            progress(block.stop, total)
+    if have:
+        acc.cell(cell_start, pending[0] if len(pending) == 1 else np.concatenate(pending))
+    return acc.result(info.channels)
+
+
+def check_finite(levels: tuple[ChannelLevels, ...], sample_rate: float | None = None) -> None:
+    """Raise :class:`SignalError` when a channel holds NaN or infinite samples.
+
+    >>> from toothcomb.decoders.model import ChannelLevels
+    >>> bad = ChannelLevels("ch1", 988, 0.0, 1.0, 0.5, 0.1, (0.5,) * 9, 0.01, 0.0,
+    ...                     non_finite=12, first_non_finite=345)
+    >>> try:
+    ...     check_finite((bad,), sample_rate=48000)
+    ... except SignalError as e:
+    ...     print(e)
+    channel 'ch1' has 12 NaN or infinite samples (first at sample 345, t = 0.0071875 s); repair the capture or record it again
+    """  # noqa: E501
+    bad = [lv for lv in levels if lv.non_finite > 0]
+    if not bad:
+        return
+    lv = bad[0]
+    where = ""
+    if lv.first_non_finite is not None:
+        where = f" (first at sample {lv.first_non_finite}"
+        if sample_rate:
+            where += f", t = {lv.first_non_finite / sample_rate:.9g} s"
+        where += ")"
+    more = ""
+    if len(bad) > 1:
+        others = ", ".join(repr(b.name) for b in bad[1:])
+        more = f", and so do {others}"
+    raise SignalError(
+        f"channel {lv.name!r} has {lv.non_finite} NaN or infinite samples{where}{more}; repair "
+        "the capture or record it again"
+    )

@@ -1,0 +1,818 @@
+"""Oscilloscope and logger exports as delimited text (CSV, TXT).
+
+What the reader works out from the file itself:
+
+- the delimiter (comma, semicolon, tab or runs of spaces) and the decimal mark (point, or comma
+  when the delimiter is a semicolon, a tab or spaces), from the rows of numbers;
+- where the numbers start: comment lines (starting with ``#``, ``%``, ``//`` or ``;``), blank lines
+  and free-text lines before them are skipped;
+- channel names and units from a header row just before the numbers (``Time (s),CH1 (V),...``;
+  ``[V]`` works too); unnamed columns become ``ch0``, ``ch1``, ...;
+- the sample rate, in this order: the ``sample_rate`` argument (a time column is then ignored,
+  with a note), a time column (a header such as ``time``, ``t``, ``time_s``, ``Time (ms)``,
+  ``sec``, ``seconds``, or, without a header, a first column that rises by a fixed step), a
+  metadata line ``<key> <separator> <value> [unit]`` in the lines before the numbers. Accepted
+  keys (any case, ``_``/``-``/space alike): ``sample rate``, ``sampling rate``, ``samplerate``,
+  ``sample frequency``, ``sampling frequency``, ``fs`` (Hz; kHz, MHz, S/s, kS/s, MS/s, Sa/s
+  also understood) and ``sample interval``, ``sampling interval``, ``sample period``,
+  ``sampling period``, ``time step``, ``dt`` (seconds; ms, us, ns also understood). A line
+  ``units: V,V`` gives units when the header has none.
+
+A time column must tick at a fixed interval: a step that differs from the fitted interval by more
+than 1 % of it (allowing for the digits the stamps were printed with) is an error naming the line.
+
+``open()`` parses the file once to check every row and fit the clock; ``blocks()`` parses it again,
+chunk by chunk with numpy's C parser, so memory stays bounded whatever the file size.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+import re
+import warnings
+from collections import Counter
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import CaptureError
+from ..model import CaptureInfo
+from .base import (
+    ClockFit,
+    IrregularClock,
+    NotIncreasing,
+    RegularClock,
+    SourceBase,
+    check_file,
+    check_sample_rate,
+    number_resolution,
+    reject_options,
+    tidy_rate,
+)
+
+EXTENSIONS: tuple[str, ...] = (".csv", ".txt", ".tsv", ".dat", ".asc")
+
+#: line starts that mark a comment
+COMMENT_PREFIXES: tuple[str, ...] = ("#", "%", "//", ";")
+
+#: (delimiter, decimal mark) pairs tried, in order of preference on a tie; None = runs of spaces
+DIALECTS: tuple[tuple[str | None, str], ...] = (
+    (",", "."),  # the common CSV
+    (";", "."),
+    ("\t", "."),
+    (None, "."),  # columns aligned with spaces
+    (";", ","),  # decimal comma exports
+    ("\t", ","),
+    (None, ","),
+)
+
+#: bytes looked at to find the layout (more when the preamble is longer)
+HEAD_BYTES = 64 * 1024
+HEAD_BYTES_MAX = 1024 * 1024
+#: bytes of text parsed at a time
+CHUNK_BYTES = 2 * 1024 * 1024
+#: data rows looked at to sniff a time column and its print resolution
+SNIFF_ROWS = 32
+#: lines looked at to sniff the dialect
+SNIFF_LINES = 200
+
+_NUMBER = re.compile(r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|inf(?:inity)?|nan)", re.I)
+_PARTIAL = re.compile(r"[+-]?\d*\.?\d*(?:[eE][+-]?\d*)?")
+_NAME_UNIT = re.compile(r"^(.*?)\s*[\(\[]\s*([^\)\]]*?)\s*[\)\]]\s*$")
+_TIME_NAME = re.compile(
+    r"(?:time|t|sec|secs|second|seconds|timestamp)(?:[ _\-]?(s|ms|us|µs|μs|ns))?", re.I
+)
+_INDEX_NAME = re.compile(r"(?:index|idx|sample|samples|sample no|n|no|nr|#)", re.I)
+_TIME_SCALE = {"s": 1.0, "sec": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "μs": 1e-6, "ns": 1e-9}
+_RATE_KEYS = frozenset(
+    {
+        "sample rate",
+        "sampling rate",
+        "samplerate",
+        "sample frequency",
+        "sampling frequency",
+        "fs",
+    }
+)
+_INTERVAL_KEYS = frozenset(
+    {"sample interval", "sampling interval", "sample period", "sampling period", "time step", "dt"}
+)
+_RATE_UNITS = {
+    "": 1.0,
+    "hz": 1.0,
+    "khz": 1e3,
+    "mhz": 1e6,
+    "ghz": 1e9,
+    "s/s": 1.0,
+    "sa/s": 1.0,
+    "sps": 1.0,
+    "ks/s": 1e3,
+    "ksa/s": 1e3,
+    "ms/s": 1e6,
+    "msa/s": 1e6,
+    "gs/s": 1e9,
+    "gsa/s": 1e9,
+}
+_INTERVAL_UNITS = {"": 1.0, "s": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "μs": 1e-6, "ns": 1e-9}
+_META = re.compile(
+    r"""^\s*"?(?P<key>[A-Za-z][A-Za-z _\-]*?)
+        (?:\s*[\(\[](?P<kunit>[A-Za-zµμ/]+)[\)\]])?"?\s*(?:[:=,;\t]\s*|\s+)"?
+        (?P<value>[+-]?(?:\d+(?:[.,]\d*)?|[.,]\d+)(?:[eE][+-]?\d+)?)"?\s*
+        (?P<unit>[A-Za-zµμ/]*)\s*$""",
+    re.X,
+)
+_UNITS_LINE = re.compile(r"^\s*units?\s*[:=]\s*(?P<rest>.+)$", re.I)
+
+
+@dataclass(frozen=True)
+class _Line:
+    """One line of the sniffed head of the file."""
+
+    number: int  # 1-based line number
+    offset: int  # byte offset of its first byte
+    text: str  # without the line end
+
+
+@dataclass
+class _Layout:
+    """Everything the sniff found out; the parse passes follow it."""
+
+    delimiter: str | None
+    decimal: str
+    n_fields: int
+    trailing: bool
+    data_offset: int
+    data_line: int
+    names: list[str] = field(default_factory=list)
+    units: list[str] = field(default_factory=list)
+    time_col: int | None = None
+    time_name: str = ""
+    time_scale: float = 1.0
+    index_col: int | None = None
+    meta_rate: float | None = None
+    meta_units: list[str] | None = None
+    resolution: float = 0.0
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def channel_cols(self) -> list[int]:
+        drop = {self.time_col, self.index_col}
+        return [i for i in range(self.n_fields) if i not in drop]
+
+    @property
+    def comments(self) -> list[str]:
+        return [p for p in COMMENT_PREFIXES if p != self.delimiter]
+
+
+def _is_comment(text: str) -> bool:
+    return text.lstrip().startswith(COMMENT_PREFIXES)
+
+
+def _strip_comment_prefix(text: str) -> str:
+    s = text.lstrip()
+    for p in COMMENT_PREFIXES:
+        if s.startswith(p):
+            return s[len(p) :].lstrip("#%/; \t")
+    return s
+
+
+def _split(text: str, delimiter: str | None) -> list[str]:
+    parts = text.split() if delimiter is None else text.split(delimiter)
+    return [p.strip().strip('"').strip() for p in parts]
+
+
+def _is_number(field_text: str, decimal: str) -> bool:
+    if decimal == ",":
+        if "." in field_text:
+            return False
+        field_text = field_text.replace(",", ".")
+    return _NUMBER.fullmatch(field_text) is not None
+
+
+def _data_fields(text: str, dialect: tuple[str | None, str]) -> list[str] | None:
+    """The fields of ``text`` if it is a row of numbers in ``dialect`` (trailing empty field
+    kept as ''), else None."""
+    delim, dec = dialect
+    if delim == "," and dec == ",":
+        return None
+    fields = _split(text, delim)
+    core = fields[:-1] if len(fields) > 1 and fields[-1] == "" else fields
+    if not core or not all(_is_number(f, dec) for f in core):
+        return None
+    return fields
+
+
+def _head_lines(buf: bytes, whole: bool, encoding: str) -> list[_Line]:
+    out: list[_Line] = []
+    pos = 0
+    number = 1
+    parts = buf.split(b"\n")
+    if not whole:
+        parts = parts[:-1]  # the last one may be cut
+    elif parts and parts[-1] == b"":
+        parts = parts[:-1]
+    for raw in parts:
+        text = raw.rstrip(b"\r").decode(encoding, errors="replace")
+        out.append(_Line(number, pos, text))
+        pos += len(raw) + 1
+        number += 1
+    return out
+
+
+def _pick_dialect(body: list[_Line]) -> tuple[tuple[str | None, str], int, int, bool] | None:
+    """Choose the dialect under which most sniffed lines are rows of numbers of one shape.
+
+    Returns (dialect, index in ``body`` of the first such row, field count, trailing delimiter).
+    Later lines of another shape are left for the parse pass to report.
+    """
+    body = body[:SNIFF_LINES]
+    best: tuple[tuple[int, int, int, int], tuple[str | None, str], int, int, bool] | None = None
+    for order, dialect in enumerate(DIALECTS):
+        shapes: list[tuple[int, bool] | None] = []
+        for ln in body:
+            fields = _data_fields(ln.text, dialect)
+            if fields is None:
+                shapes.append(None)
+                continue
+            tr = len(fields) > 1 and fields[-1] == ""
+            shapes.append((len(fields) - int(tr), tr))
+        counts = Counter(sh for sh in shapes if sh is not None)
+        if not counts:
+            continue
+        (count, trailing), freq = counts.most_common(1)[0]
+        start = shapes.index((count, trailing))
+        header_match = 0
+        if start > 0:
+            prev = _split(_strip_comment_prefix(body[start - 1].text), dialect[0])
+            if trailing and len(prev) > 1 and prev[-1] == "":
+                prev = prev[:-1]
+            header_match = int(len(prev) == count)
+        key = (freq, header_match, count, -order)
+        if best is None or key > best[0]:
+            best = (key, dialect, start, count, trailing)
+    if best is None:
+        return None
+    return best[1], best[2], best[3], best[4]
+
+
+def _stamp_resolution(values: Sequence[str]) -> float:
+    """Typical print resolution of time stamps (median over the non-zero ones)."""
+    res = []
+    for v in values:
+        t = v.replace(",", ".")
+        if _NUMBER.fullmatch(t) and float(t) != 0.0:
+            res.append(number_resolution(t))
+    return float(np.median(res)) if res else 0.0
+
+
+def _name_unit(text: str) -> tuple[str, str]:
+    m = _NAME_UNIT.match(text)
+    if m:
+        return m.group(1).strip().strip('"'), m.group(2).strip()
+    return text.strip().strip('"'), ""
+
+
+def _looks_like_units(fields: Sequence[str]) -> bool:
+    return all(re.fullmatch(r"[\(\[]?[A-Za-zµμ°%/]{0,6}[\)\]]?", f) for f in fields) and any(fields)
+
+
+def _header_fields(text: str, delimiter: str | None, n: int, trailing: bool) -> list[str] | None:
+    fields = _split(text, delimiter)
+    if trailing and len(fields) > 1 and fields[-1] == "":
+        fields = fields[:-1]
+    if len(fields) != n and delimiter is None:
+        fields = [f.strip().strip('"') for f in re.split(r"\s{2,}|\t", text.strip())]
+    if len(fields) != n:
+        return None
+    return fields
+
+
+def _parse_meta(lines: list[_Line], layout: _Layout, shown: str) -> None:
+    """Sample rate / interval / units lines in the preamble."""
+    for line in lines:
+        text = _strip_comment_prefix(line.text)
+        um = _UNITS_LINE.match(text)
+        if um:
+            layout.meta_units = [
+                u.strip().strip('"()[]') for u in re.split(r"[,;\t]|\s+", um.group("rest").strip())
+            ]
+            continue
+        m = _META.match(text)
+        if not m:
+            continue
+        key = re.sub(r"[\s_\-]+", " ", m.group("key").strip().lower())
+        value = float(m.group("value").replace(",", "."))
+        unit = (m.group("unit") or m.group("kunit") or "").lower()
+        if key in _RATE_KEYS and unit in _RATE_UNITS:
+            rate = value * _RATE_UNITS[unit]
+        elif key in _INTERVAL_KEYS and unit in _INTERVAL_UNITS:
+            dt = value * _INTERVAL_UNITS[unit]
+            if not dt > 0:
+                raise CaptureError(
+                    f"{shown}: line {line.number} gives a sample interval of {m.group('value')} "
+                    "which is not positive; fix it or pass --sample-rate"
+                )
+            rate = 1.0 / dt
+        else:
+            continue
+        if not (math.isfinite(rate) and rate > 0):
+            raise CaptureError(
+                f"{shown}: line {line.number} gives a sample rate of {m.group('value')} "
+                "which is not positive; fix it or pass --sample-rate"
+            )
+        layout.meta_rate = tidy_rate(rate)
+
+
+def _find_header(pre: list[_Line], layout: _Layout) -> None:
+    """Channel names and units from the row(s) just before the numbers."""
+    n = layout.n_fields
+    cands = [
+        ln
+        for ln in pre
+        if ln.text.strip()
+        and not _META.match(_strip_comment_prefix(ln.text))
+        and not _UNITS_LINE.match(_strip_comment_prefix(ln.text))
+    ]
+    if not cands or (n == 1 and _is_comment(cands[-1].text)):
+        return
+    last = cands[-1]
+    text = _strip_comment_prefix(last.text) if _is_comment(last.text) else last.text
+    fields = _header_fields(text, layout.delimiter, n, layout.trailing)
+    unit_row: list[str] | None = None
+    if fields is not None and _looks_like_units(fields) and len(cands) >= 2:
+        above = cands[-2]
+        t2 = _strip_comment_prefix(above.text) if _is_comment(above.text) else above.text
+        f2 = _header_fields(t2, layout.delimiter, n, layout.trailing)
+        if f2 is not None and not all(_is_number(f, layout.decimal) for f in f2 if f):
+            unit_row = [f.strip("()[]") for f in fields]
+            fields = f2
+    if fields is None or all(_is_number(f, layout.decimal) for f in fields if f):
+        return
+    names, units = [], []
+    for f in fields:
+        name, unit = _name_unit(f)
+        names.append(name)
+        units.append(unit)
+    if unit_row is not None:
+        units = [u or r for u, r in zip(units, unit_row, strict=True)]
+    layout.names, layout.units = names, units
+
+
+def _classify_columns(layout: _Layout, rows: list[list[str]]) -> None:
+    """Find the time (and sample index) column by name, else by a fixed step in column 0."""
+    for i, name in enumerate(layout.names):
+        m = _TIME_NAME.fullmatch(name.strip())
+        if m:
+            unit = (m.group(1) or layout.units[i] or "s").lower()
+            if unit not in _TIME_SCALE:
+                layout.notes.append(f"time column {name!r} has unit {unit!r}; read as seconds")
+                unit = "s"
+            layout.time_col, layout.time_name, layout.time_scale = i, name, _TIME_SCALE[unit]
+            break
+    for i, name in enumerate(layout.names):
+        if i != layout.time_col and _INDEX_NAME.fullmatch(name.strip()):
+            layout.index_col = i
+            layout.notes.append(f"column {name!r} holds sample numbers and is not a channel")
+            break
+    if layout.names or layout.n_fields < 2 or len(rows) < 3:
+        return
+    try:
+        col = np.array([float(r[0].replace(",", ".")) for r in rows])
+    except ValueError:
+        return
+    steps = np.diff(col)
+    mean = float(np.mean(steps))
+    res = _stamp_resolution([r[0] for r in rows])
+    if not (mean > 0 and np.all(np.abs(steps - mean) <= 0.01 * mean + res)):
+        return
+    if np.all(col == np.round(col)) and mean == 1.0:
+        layout.index_col = 0
+        layout.notes.append("column 1 counts samples and is not a channel")
+        return
+    scale = 1.0
+    if layout.meta_rate is not None:
+        # a rising first column is the time only if it agrees with the stated rate
+        fits = [k for k in (1.0, 1e-3, 1e-6, 1e-9) if abs(mean * k * layout.meta_rate - 1) < 0.01]
+        if not fits:
+            return
+        scale = fits[0]
+    layout.time_col, layout.time_name, layout.time_scale = 0, "column 1", scale
+
+
+def _channel_names(layout: _Layout) -> tuple[str, ...]:
+    out: list[str] = []
+    for k, col in enumerate(layout.channel_cols):
+        name = layout.names[col] if layout.names else ""
+        base = name or f"ch{k}"
+        cand, j = base, 2
+        while cand in out:
+            cand, j = f"{base}_{j}", j + 1
+        out.append(cand)
+    return tuple(out)
+
+
+def _encoding(head: bytes) -> str:
+    try:
+        head.decode("utf-8")
+        return "utf-8"
+    except UnicodeDecodeError as exc:
+        # a multi-byte character cut by the end of the window is still UTF-8
+        if exc.start >= len(head) - 3 and exc.reason == "unexpected end of data":
+            return "utf-8"
+        return "latin-1"
+
+
+def _sniff(path: Path, shown: str, *, strict: bool) -> _Layout | None:
+    """Work out the layout from the head of the file. With ``strict`` a file that does not fit
+    raises :class:`CaptureError`; otherwise None is returned."""
+    size = path.stat().st_size
+    limit = HEAD_BYTES
+    while True:
+        with open(path, "rb") as f:
+            head = f.read(limit)
+        whole = len(head) >= size
+        bom = 0
+        if head.startswith((b"\xff\xfe", b"\xfe\xff")) or head[:64].count(b"\x00") > 8:
+            if strict:
+                raise CaptureError(
+                    f"{shown}: looks like UTF-16 or binary data, not text; save the export as "
+                    "plain text (UTF-8 or ASCII)"
+                )
+            return None
+        if b"\x00" in head:
+            if strict:
+                raise CaptureError(f"{shown}: holds binary data, not delimited text")
+            return None
+        if head.startswith(b"\xef\xbb\xbf"):
+            bom = 3
+        encoding = _encoding(head[bom:])
+        lines = _head_lines(head[bom:], whole, encoding)
+        body = [ln for ln in lines if ln.text.strip() and not _is_comment(ln.text)]
+        picked = _pick_dialect(body)
+        if picked is not None or whole or limit >= HEAD_BYTES_MAX:
+            break
+        limit = HEAD_BYTES_MAX
+    if picked is None:
+        if strict:
+            looked = f"the first {len(lines)} lines" if not whole else "any line"
+            raise CaptureError(
+                f"{shown}: found no rows of numbers in {looked}; a capture export needs one row "
+                "of numbers per sample (e.g. '0.000021,1.25,0.03')"
+            )
+        return None
+    (delim, dec), start, count, trailing = picked
+    first = body[start]
+    layout = _Layout(
+        delimiter=delim,
+        decimal=dec,
+        n_fields=count,
+        trailing=trailing,
+        data_offset=first.offset + bom,
+        data_line=first.number,
+    )
+    pre = [ln for ln in lines if ln.number < first.number]
+    _parse_meta(pre, layout, shown)
+    _find_header(pre, layout)
+    sample = [ln for ln in body[start : start + SNIFF_ROWS]]
+    rows = [f for f in (_data_fields(ln.text, (delim, dec)) for ln in sample) if f is not None]
+    _classify_columns(layout, rows)
+    if layout.time_col is not None:
+        head_res = _stamp_resolution([r[layout.time_col] for r in rows])
+        tail_res = _stamp_resolution(_tail_stamps(path, size, layout))
+        layout.resolution = max(head_res, tail_res) * layout.time_scale
+    return layout
+
+
+def _tail_stamps(path: Path, size: int, layout: _Layout) -> list[str]:
+    """Time stamps of the last rows, as printed (larger numbers may carry fewer decimals)."""
+    if layout.time_col is None or size <= HEAD_BYTES:
+        return []
+    with open(path, "rb") as f:
+        f.seek(max(0, size - 8192))
+        tail = f.read().decode("latin-1").splitlines()[1:]
+    out = []
+    for text in tail[-SNIFF_ROWS:]:
+        fields = _data_fields(text, (layout.delimiter, layout.decimal))
+        if fields is not None and len(fields) > layout.time_col:
+            out.append(fields[layout.time_col])
+    return out
+
+
+@dataclass
+class _Chunk:
+    """A run of whole lines of the data part of the file."""
+
+    offset: int
+    first_line: int
+    raw: bytes
+    at_eof: bool
+
+
+def _chunks(path: Path, layout: _Layout) -> Iterator[_Chunk]:
+    with open(path, "rb") as f:
+        size = os.fstat(f.fileno()).st_size
+        f.seek(layout.data_offset)
+        line = layout.data_line
+        offset = layout.data_offset
+        while True:
+            raw = f.read(CHUNK_BYTES)
+            if not raw:
+                return
+            if not raw.endswith(b"\n"):
+                raw += f.readline()
+            at_eof = f.tell() >= size
+            yield _Chunk(offset, line, raw, at_eof)
+            line += raw.count(b"\n")
+            offset += len(raw)
+            if at_eof:
+                return
+
+
+def _quote(text: str, limit: int = 40) -> str:
+    text = text.strip()
+    return repr(text if len(text) <= limit else text[:limit] + "...")
+
+
+def _bad_line(chunk: _Chunk, layout: _Layout, shown: str, detail: str) -> CaptureError:
+    """Find the first line of ``chunk`` the parser rejects and describe it."""
+    text = chunk.raw.decode("latin-1")
+    lines = text.split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()
+    last_data = len(lines) - 1
+    while last_data >= 0 and not _clean(lines[last_data], layout):
+        last_data -= 1
+    expected = layout.n_fields
+    for k, line in enumerate(lines):
+        body = _clean(line, layout)
+        if not body:
+            continue
+        number = chunk.first_line + k
+        fields = _split(body, layout.delimiter)
+        if layout.trailing and len(fields) > 1 and fields[-1] == "":
+            fields = fields[:-1]
+        numeric = [_is_number(f, layout.decimal) for f in fields]
+        if len(fields) == expected and all(numeric):
+            continue
+        is_last = chunk.at_eof and k == last_data
+        partial = all(numeric[:-1]) and (
+            numeric[-1] or _PARTIAL.fullmatch(fields[-1].replace(",", ".")) is not None
+        )
+        if is_last and partial and (len(fields) < expected or not numeric[-1]):
+            return CaptureError(
+                f"{shown}: the file looks truncated at line {number} ({_quote(line)} has "
+                f"{len(fields)} of {expected} values); export or copy it again"
+            )
+        if len(fields) != expected:
+            return CaptureError(
+                f"{shown}: line {number} has {len(fields)} values where the rows above have "
+                f"{expected} ({_quote(line)}); fix or delete that line"
+            )
+        bad = fields[numeric.index(False)]
+        return CaptureError(
+            f"{shown}: line {number} holds {bad!r}, which is not a number ({_quote(line)}); "
+            "fix or delete that line"
+        )
+    return CaptureError(f"{shown}: cannot parse the lines from {chunk.first_line} on ({detail})")
+
+
+def _clean(line: str, layout: _Layout) -> str:
+    """A line without its comment part and line end; '' for blank and comment lines."""
+    s = line.rstrip("\r")
+    for p in layout.comments:
+        k = s.find(p)
+        if k >= 0:
+            s = s[:k]
+    return s.strip()
+
+
+def _parse(
+    chunk: _Chunk, layout: _Layout, shown: str, usecols: Sequence[int] | None = None
+) -> np.ndarray:
+    """Parse one chunk into an (n, columns) float64 array, or raise naming the bad line."""
+    text = chunk.raw.decode("latin-1")
+    if layout.decimal == ",":
+        text = text.replace(",", ".")
+    if '"' in text:
+        text = text.replace('"', "")  # quoted numbers: a number never holds a delimiter
+    if any(m in text for m in layout.comments):
+        # rare: comments among the numbers; numpy's C parser takes no list of markers
+        text = "\n".join(_clean(line, layout) for line in text.split("\n"))
+    cols = usecols
+    if cols is None and layout.trailing:
+        cols = range(layout.n_fields)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            data = np.loadtxt(
+                io.StringIO(text),
+                dtype=np.float64,
+                delimiter=layout.delimiter,
+                comments=None,
+                usecols=cols,
+                ndmin=2,
+            )
+    except ValueError as exc:
+        raise _bad_line(chunk, layout, shown, str(exc)) from None
+    want = len(cols) if cols is not None else layout.n_fields
+    if data.shape[0] and data.shape[1] != want:
+        raise _bad_line(chunk, layout, shown, f"{data.shape[1]} columns")
+    return data
+
+
+def _line_of_row(path: Path, layout: _Layout, row: int) -> int:
+    """The line number of data row ``row`` (0-based), walking the file (error path only)."""
+    seen = 0
+    for chunk in _chunks(path, layout):
+        for k, line in enumerate(chunk.raw.decode("latin-1").split("\n")):
+            if _clean(line, layout):
+                if seen == row:
+                    return chunk.first_line + k
+                seen += 1
+    return layout.data_line + row
+
+
+def _scan(path: Path, layout: _Layout, shown: str, use_clock: bool) -> tuple[int, ClockFit | None]:
+    """The checking pass: parse every row, count them, fit the time column."""
+    clock = RegularClock(resolution=layout.resolution) if use_clock else None
+    n = 0
+    t_first = math.nan
+    try:
+        for chunk in _chunks(path, layout):
+            data = _parse(chunk, layout, shown)
+            if layout.time_col is not None and data.shape[0]:
+                t = data[:, layout.time_col] * layout.time_scale
+                if n == 0:
+                    t_first = float(t[0])
+                n += data.shape[0]
+                if clock is not None:
+                    clock.feed(t)
+            else:
+                n += data.shape[0]
+        if n == 0:
+            raise CaptureError(f"{shown}: has a header but no rows of numbers")
+        if clock is None:
+            fit = ClockFit(math.nan, t_first, n, 0.0) if layout.time_col is not None else None
+            return n, fit
+        return n, clock.finish()
+    except IrregularClock as exc:
+        raise _clock_error(path, layout, shown, exc) from None
+    except NotIncreasing:
+        if n < 2:
+            raise CaptureError(
+                f"{shown}: has a single row, so its time column gives no sample interval; "
+                "pass --sample-rate"
+            ) from None
+        raise CaptureError(
+            f"{shown}: the time column {layout.time_name!r} does not increase; resample the "
+            "capture to a fixed interval or pass --sample-rate to ignore the time column"
+        ) from None
+
+
+def _clock_error(path: Path, layout: _Layout, shown: str, exc: IrregularClock) -> CaptureError:
+    st = exc.step
+    line = _line_of_row(path, layout, st.index)
+    if math.isnan(st.step):
+        return CaptureError(
+            f"{shown}: the time stamp on line {line} is not a number ({st.time!r}); fix that "
+            "line or pass --sample-rate to ignore the time column"
+        )
+    return CaptureError(
+        f"{shown}: the time column is irregular at line {line} (t = {st.time:.9g} s): a step of "
+        f"{st.step:.6g} s where the others are {st.interval:.6g} s; resample the capture to a "
+        "fixed interval or pass --sample-rate to ignore the time column"
+    )
+
+
+class CsvSource(SourceBase):
+    """An open text capture (see :func:`toothcomb.decoders.readers.open_capture`)."""
+
+    def __init__(self, path: Path, info: CaptureInfo, layout: _Layout) -> None:
+        super().__init__(info)
+        self._path = path
+        self._layout = layout
+
+    def _pieces(self, block_size: int) -> Iterator[np.ndarray]:
+        cols = self._layout.channel_cols
+        for chunk in _chunks(self._path, self._layout):
+            data = _parse(chunk, self._layout, self.info.path, usecols=cols)
+            if data.shape[0]:
+                yield data
+
+
+class ScopeCsvReader:
+    """Reader plugin for delimited text exports (entry point ``csv``).
+
+    >>> import os, tempfile
+    >>> path = os.path.join(tempfile.mkdtemp(), "scope.csv")
+    >>> with open(path, "w") as f:
+    ...     _ = f.write("Time (s),CRK (V),CAM (V)\\n0.0,0.1,4.9\\n0.001,0.2,4.8\\n0.002,0.1,4.9\\n")
+    >>> with ScopeCsvReader.open(path) as src:
+    ...     print(src.info.sample_rate, src.info.channels, src.info.units)
+    ...     print(next(src.blocks()).data.tolist())
+    1000.0 ('CRK', 'CAM') ('V', 'V')
+    [[0.1, 4.9], [0.2, 4.8], [0.1, 4.9]]
+    """
+
+    name = "csv"
+    extensions = EXTENSIONS
+
+    @staticmethod
+    def detect(path: str | os.PathLike[str]) -> bool:
+        """True when the file is text with at least two rows of numbers in one dialect."""
+        try:
+            p = Path(path)
+            if not p.is_file() or p.stat().st_size == 0:
+                return False
+            layout = _sniff(p, os.fspath(path), strict=False)
+        except (OSError, CaptureError, ValueError):
+            return False
+        if layout is None:
+            return False
+        with open(p, "rb") as f:
+            f.seek(layout.data_offset)
+            rows = [ln for ln in f.read(4096).split(b"\n") if ln.strip()]
+        return len(rows) >= 2
+
+    @staticmethod
+    def open(
+        path: str | os.PathLike[str], *, sample_rate: float | None = None, **options: Any
+    ) -> CsvSource:
+        """Open a text capture; ``sample_rate`` (Hz) is needed when the file gives no rate."""
+        reject_options("csv", options)
+        rate_given = check_sample_rate(sample_rate)
+        shown = os.fspath(path)
+        p = check_file(path)
+        try:
+            layout = _sniff(p, shown, strict=True)
+        except OSError as exc:
+            raise CaptureError(f"{shown}: cannot be read ({exc.strerror})") from None
+        assert layout is not None
+        if not layout.channel_cols:
+            raise CaptureError(f"{shown}: holds only a time column, no channel to decode")
+        if rate_given is None and layout.time_col is None and layout.meta_rate is None:
+            raise CaptureError(
+                f"{shown}: has no time column and no sample rate line; pass --sample-rate "
+                "with the rate the capture was taken at"
+            )
+        notes = list(layout.notes)
+        use_clock = rate_given is None and layout.time_col is not None
+        try:
+            n, fit = _scan(p, layout, shown, use_clock)
+        except OSError as exc:
+            raise CaptureError(f"{shown}: cannot be read ({exc.strerror})") from None
+        t0 = fit.t0 if fit is not None else 0.0
+        if rate_given is not None:
+            rate = rate_given
+            if layout.time_col is not None:
+                notes.append(
+                    f"time column {layout.time_name!r} ignored: sample rate {rate:g} Hz given"
+                )
+        elif fit is not None:
+            rate = fit.sample_rate
+            meta = layout.meta_rate
+            if meta is not None and abs(meta - rate) <= max(fit.uncertainty, 1e-9 * rate):
+                rate = meta  # the stated rate agrees with the stamps and is more precise
+            dt = 1.0 / rate
+            if fit.resolution > 0.5 * dt:
+                notes.append(
+                    f"time stamps are printed to {fit.resolution:g} s, coarser than the sample "
+                    f"interval {dt:.6g} s, so their regularity could not be checked"
+                )
+            if layout.meta_rate is not None and abs(layout.meta_rate - rate) > 1e-3 * rate:
+                notes.append(
+                    f"the time column gives {rate:g} Hz, the header line says "
+                    f"{layout.meta_rate:g} Hz; using the time column"
+                )
+        else:
+            assert layout.meta_rate is not None
+            rate = layout.meta_rate
+        cols = layout.channel_cols
+        units = [layout.units[c] if layout.units else "" for c in cols]
+        if not any(units) and layout.meta_units is not None:
+            mu = layout.meta_units
+            if len(mu) == len(cols):
+                units = list(mu)
+            elif len(mu) == layout.n_fields:
+                units = [mu[c] for c in cols]
+        dialect = {None: "spaces", ",": "comma", ";": "semicolon", "\t": "tab"}[layout.delimiter]
+        mark = "decimal comma" if layout.decimal == "," else "decimal point"
+        notes.insert(0, f"{dialect}-delimited, {mark}, data from line {layout.data_line}")
+        info = CaptureInfo(
+            path=shown,
+            sample_rate=float(rate),
+            n_samples=n,
+            channels=_channel_names(layout),
+            format="csv",
+            subtype="text",
+            t0=t0,
+            units=tuple(units),
+            full_scale=(math.nan,) * len(cols),
+            notes=tuple(notes),
+        )
+        return CsvSource(p, info, layout)

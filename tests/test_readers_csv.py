@@ -1,0 +1,344 @@
+"""The scope CSV/TXT reader: dialects, headers, time columns, rates and the errors it reports."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+from toothcomb.decoders.errors import CaptureError
+from toothcomb.decoders.readers import open_capture, scopecsv
+from toothcomb.decoders.readers.base import RegularClock
+
+RNG = np.random.default_rng(7)
+
+
+def _read(path: Path, block_size: int = 1000, **kw: object) -> tuple[object, np.ndarray]:
+    with open_capture(path, **kw) as src:
+        data = np.concatenate([b.data for b in src.blocks(block_size)])
+        return src.info, data
+
+
+def _write(tmp_path: Path, name: str, text: str, newline: str = "\n") -> Path:
+    path = tmp_path / name
+    path.write_bytes(text.replace("\n", newline).encode("utf-8"))
+    return path
+
+
+def _table(n: int, rate: float, t0: float = 0.0, cols: int = 2, fmt: str = "{:.9f}") -> tuple:
+    """Rows of text (time, values...) and the values as Python parses their text."""
+    values = RNG.normal(0.0, 2.0, size=(n, cols))
+    texts = [
+        [fmt.format(t0 + i / rate)] + [f"{v:.6g}" for v in row] for i, row in enumerate(values)
+    ]
+    parsed = np.array([[float(v) for v in row[1:]] for row in texts])
+    return texts, parsed
+
+
+# ----------------------------------------------------------------------------- dialects
+
+
+@pytest.mark.parametrize("newline", ["\n", "\r\n"])
+def test_comma_point_with_header_units_and_negative_t0(tmp_path: Path, newline: str) -> None:
+    rows, values = _table(500, 20000.0, t0=-0.005)
+    text = "Time (s),CRK (V),CAM [mV]\n" + "\n".join(",".join(r) for r in rows) + "\n"
+    info, data = _read(_write(tmp_path, "scope.csv", text, newline), block_size=77)
+    assert info.sample_rate == 20000.0
+    assert info.t0 == pytest.approx(-0.005, abs=1e-12)
+    assert info.n_samples == 500
+    assert info.channels == ("CRK", "CAM")
+    assert info.units == ("V", "mV")
+    assert info.format == "csv"
+    assert np.array_equal(data, values)
+
+
+def test_semicolon_decimal_comma_with_metadata_preamble(tmp_path: Path) -> None:
+    rows, values = _table(300, 1000.0, t0=0.25, fmt="{:.6f}")
+    body = "\n".join(";".join(c.replace(".", ",") for c in r) for r in rows)
+    text = (
+        "Instrument;bench logger\n"
+        "Record length;300\n"
+        "Sample rate;1000 Hz\n"
+        "\n"
+        "Time (s);Crank (V);Cam (V)\n" + body + "\n"
+    )
+    info, data = _read(_write(tmp_path, "export.csv", text))
+    assert info.sample_rate == 1000.0
+    assert info.t0 == 0.25
+    assert info.channels == ("Crank", "Cam")
+    assert info.units == ("V", "V")
+    assert np.array_equal(data, values)
+    assert any("semicolon" in n and "decimal comma" in n for n in info.notes)
+
+
+def test_tab_delimited_decimal_comma(tmp_path: Path) -> None:
+    text = "t\tA\tB\n0,000\t1,5\t-2,25\n0,001\t1,75\t-2,5\n0,002\t2\t-2,75\n"
+    info, data = _read(_write(tmp_path, "tab.txt", text))
+    assert info.sample_rate == 1000.0
+    assert data.tolist() == [[1.5, -2.25], [1.75, -2.5], [2.0, -2.75]]
+
+
+def test_space_aligned_columns_with_free_text_and_comments(tmp_path: Path) -> None:
+    text = (
+        "Capture of the crank and cam sensors\n"
+        "taken with the probe on pin 3\n"
+        "# comment with a hash\n"
+        "% comment with a percent sign\n"
+        "// comment with slashes\n"
+        "; comment with a semicolon\n"
+        "   0.0000    1.0e-3    4.75\n"
+        "   0.0005   -2.5e-3    4.80\n"
+        "   0.0010    3.0e-3    0.10\n"
+        "   0.0015    0.0       0.12\n"
+    )
+    info, data = _read(_write(tmp_path, "aligned.txt", text))
+    assert info.sample_rate == 2000.0  # the first column rises by 0.5 ms: a time column
+    assert info.channels == ("ch0", "ch1")
+    assert data.tolist() == [[1e-3, 4.75], [-2.5e-3, 4.8], [3e-3, 0.1], [0.0, 0.12]]
+    assert any("line 7" in n for n in info.notes)
+
+
+def test_comments_and_blank_lines_among_the_numbers(tmp_path: Path) -> None:
+    text = "time,a\n0.00,1\n# trigger re-armed\n0.01,2\n\n0.02,3\n% end\n"
+    info, data = _read(_write(tmp_path, "c.csv", text))
+    assert info.n_samples == 3
+    assert data[:, 0].tolist() == [1.0, 2.0, 3.0]
+    assert info.sample_rate == 100.0
+
+
+def test_quoted_fields_trailing_delimiter_bom_and_micro_sign(tmp_path: Path) -> None:
+    text = '\ufeff"Time (µs)","Signal (V)",\n"0","0.5",\n"20","0.25",\n"40","0.125",\n'
+    info, data = _read(_write(tmp_path, "q.csv", text))
+    assert info.sample_rate == 50000.0  # 20 us steps
+    assert info.channels == ("Signal",)
+    assert info.units == ("V",)
+    assert data[:, 0].tolist() == [0.5, 0.25, 0.125]
+
+
+def test_unnamed_columns_and_duplicate_names(tmp_path: Path) -> None:
+    text = "time_s,,crank,crank\n0,1,2,3\n0.5,4,5,6\n1.0,7,8,9\n"
+    info, data = _read(_write(tmp_path, "u.csv", text))
+    assert info.channels == ("ch0", "crank", "crank_2")
+    assert data.tolist() == [[1, 2, 3], [4, 5, 6], [7, 8, 9]]
+
+
+def test_units_row_below_the_names_and_units_line(tmp_path: Path) -> None:
+    a = "Time,CH1,CH2\n(s),(V),(mV)\n0,1,2\n1,2,3\n2,3,4\n"
+    info, _ = _read(_write(tmp_path, "a.csv", a))
+    assert info.channels == ("CH1", "CH2") and info.units == ("V", "mV")
+    b = "# units: V,A\ntime,a,b\n0,1,2\n1,2,3\n2,3,4\n"
+    info, _ = _read(_write(tmp_path, "b.csv", b))
+    assert info.channels == ("a", "b") and info.units == ("V", "A")
+
+
+def test_sample_index_column_is_not_a_channel(tmp_path: Path) -> None:
+    text = "0,1.5,2\n1,1.25,3\n2,1.5,4\n3,1.5,3\n"
+    info, data = _read(_write(tmp_path, "i.csv", text), sample_rate=100)
+    assert info.channels == ("ch0", "ch1")
+    assert data.tolist() == [[1.5, 2], [1.25, 3], [1.5, 4], [1.5, 3]]
+    assert any("counts samples" in n for n in info.notes)
+
+
+# --------------------------------------------------------------------------------- rates
+
+
+def test_time_column_in_milliseconds(tmp_path: Path) -> None:
+    text = "Time (ms),ch\n-1.0,0\n-0.5,0\n0.0,1\n0.5,1\n"
+    info, _ = _read(_write(tmp_path, "ms.csv", text))
+    assert info.sample_rate == 2000.0
+    assert info.t0 == -0.001
+
+
+@pytest.mark.parametrize(
+    "line,rate",
+    [
+        ("Sample rate: 48000 Hz", 48000.0),
+        ("sampling rate = 48 kHz", 48000.0),
+        ("# fs: 2.5 MS/s", 2.5e6),
+        ("SampleRate,1000", 1000.0),
+        ("% Sample interval: 20 us", 50000.0),
+        ("dt = 2e-5 s", 50000.0),
+        ("sample_period\t0.5 ms", 2000.0),
+        ("Sample Rate (kHz),25", 25000.0),
+        ("dt [us] = 40", 25000.0),
+    ],
+)
+def test_metadata_line_gives_the_rate(tmp_path: Path, line: str, rate: float) -> None:
+    text = f"{line}\ncrank,cam\n0.5,4.5\n0.6,4.4\n0.5,4.5\n"
+    info, data = _read(_write(tmp_path, "m.csv", text))
+    assert info.sample_rate == rate
+    assert info.channels == ("crank", "cam")
+    assert data.shape == (3, 2)
+
+
+def test_rising_first_column_disagreeing_with_the_rate_line_is_a_channel(tmp_path: Path) -> None:
+    text = "% fs = 48 kHz\n1.0,2.0\n3.0,4.0\n5.0,6.0\n"
+    info, data = _read(_write(tmp_path, "ramp.csv", text))
+    assert info.sample_rate == 48000.0
+    assert info.channels == ("ch0", "ch1")
+    assert data[:, 0].tolist() == [1.0, 3.0, 5.0]
+
+
+def test_sample_rate_argument_overrides_the_time_column(tmp_path: Path) -> None:
+    text = "time,a\n0.0,1\n0.1,2\n0.2,3\n"
+    info, _ = _read(_write(tmp_path, "t.csv", text), sample_rate=500)
+    assert info.sample_rate == 500.0
+    assert any("time column 'time' ignored" in n for n in info.notes)
+    assert info.channels == ("a",)
+
+
+def test_no_rate_anywhere_asks_for_sample_rate(tmp_path: Path) -> None:
+    path = _write(tmp_path, "n.csv", "crank,cam\n0.5,4.5\n0.7,4.5\n0.5,0.2\n")
+    with pytest.raises(CaptureError, match="pass --sample-rate"):
+        open_capture(path)
+    info, _ = _read(path, sample_rate=25000)
+    assert info.sample_rate == 25000.0 and info.t0 == 0.0
+
+
+@pytest.mark.parametrize("decimals", [9, 7, 6])
+def test_rounded_time_stamps_are_not_irregular(tmp_path: Path, decimals: int) -> None:
+    rows, values = _table(3000, 48000.0, fmt=f"{{:.{decimals}f}}")
+    text = "time,x,y\n" + "\n".join(",".join(r) for r in rows) + "\n"
+    info, data = _read(_write(tmp_path, "r.csv", text))
+    assert info.sample_rate == 48000.0
+    assert np.array_equal(data, values)
+
+
+def test_scientific_stamps_with_a_long_capture(tmp_path: Path) -> None:
+    # %.6e keeps 7 significant digits: 5e-2 s is printed to 1e-8 s, far below 1/48000 s
+    rows, _ = _table(2400, 48000.0, fmt="{:.6e}")
+    text = "t,v,w\n" + "\n".join(",".join(r) for r in rows) + "\n"
+    info, _ = _read(_write(tmp_path, "e.csv", text))
+    assert info.sample_rate == 48000.0
+
+
+# -------------------------------------------------------------------------------- errors
+
+
+def _irregular(tmp_path: Path, times: np.ndarray) -> str:
+    text = "time,a\n" + "".join(f"{t:.9f},{k % 7}\n" for k, t in enumerate(times))
+    path = _write(tmp_path, "irr.csv", text)
+    with pytest.raises(CaptureError) as err:
+        open_capture(path)
+    msg = str(err.value)
+    assert "resample the capture to a fixed interval" in msg
+    assert "--sample-rate to ignore the time column" in msg
+    return msg
+
+
+def test_a_gap_is_irregular(tmp_path: Path) -> None:
+    t = np.delete(np.arange(200) / 48000, 120)  # row 120 missing: one step of 2/48000
+    msg = _irregular(tmp_path, t)
+    # data row 120 (0-based) follows the header on line 1: line 122
+    assert "irregular at line 122" in msg
+    # the steps between the stamps as printed with 9 decimals: 0.00004166x and 0.00002083x
+    assert re.search(r"a step of 4\.166\d*e-05 s where the others are 2\.083\d*e-05 s", msg)
+
+
+def test_a_repeated_stamp_is_irregular(tmp_path: Path) -> None:
+    t = np.arange(100) / 10000
+    t[60] = t[59]
+    msg = _irregular(tmp_path, t)
+    assert "irregular at line 62" in msg and "a step of 0 s" in msg
+
+
+def test_a_jittery_clock_is_irregular(tmp_path: Path) -> None:
+    steps = 1e-4 * (1 + RNG.uniform(-0.03, 0.03, size=300))
+    msg = _irregular(tmp_path, np.concatenate([[0.0], np.cumsum(steps)]))
+    m = re.search(r"irregular at line (\d+) .* a step of (\S+) s where the others are (\S+) s", msg)
+    assert m is not None
+    step, interval = float(m.group(2)), float(m.group(3))
+    assert abs(step / interval - 1) > 0.01
+    assert abs(interval / 1e-4 - 1) < 0.01  # the median step of a +-3 % jitter around 0.1 ms
+    row = int(m.group(1)) - 2  # the step ending on that line, 0-based after the header line
+    assert abs(steps[row - 1] / interval - 1) > 0.01
+    assert all(abs(s / interval - 1) <= 0.01 + 1e-9 / interval for s in steps[: row - 1])
+
+
+def test_time_going_backwards(tmp_path: Path) -> None:
+    path = _write(tmp_path, "b.csv", "time,a\n0.3,1\n0.2,1\n0.1,1\n")
+    with pytest.raises(CaptureError, match="does not increase"):
+        open_capture(path)
+
+
+def test_wrong_number_of_fields(tmp_path: Path) -> None:
+    path = _write(tmp_path, "m.csv", "time,a,b\n0,1,2\n0.1,1,2\n0.2,1\n0.3,1,2\n")
+    with pytest.raises(CaptureError) as err:
+        open_capture(path)
+    assert str(err.value) == (
+        f"{path}: line 4 has 2 values where the rows above have 3 ('0.2,1'); "
+        "fix or delete that line"
+    )
+
+
+def test_text_in_a_row(tmp_path: Path) -> None:
+    path = _write(tmp_path, "t.csv", "time,a,b\n0,1,2\n0.1,1,overload\n0.2,1,2\n")
+    with pytest.raises(CaptureError, match=r"line 3 holds 'overload', which is not a number"):
+        open_capture(path)
+
+
+@pytest.mark.parametrize("tail", ["0.3,1", "0.3,1,", "0.3,1,2e", "0.3,1,-"])
+def test_last_line_cut_short(tmp_path: Path, tail: str) -> None:
+    path = _write(tmp_path, "cut.csv", "time,a,b\n0,1,2\n0.1,1,2\n0.2,1,2\n" + tail)
+    with pytest.raises(CaptureError, match=r"the file looks truncated at line 5"):
+        open_capture(path)
+
+
+@pytest.mark.parametrize(
+    "text,fragment",
+    [
+        ("", "is empty"),
+        ("   \n\n  \n", "found no rows of numbers"),
+        ("time,a,b\n", "found no rows of numbers"),
+        ("just some notes\nabout nothing\n", "found no rows of numbers"),
+        ("time\n0\n1\n2\n", "only a time column"),
+        ("time,a\n0.5,1\n", "single row"),
+    ],
+)
+def test_files_without_usable_rows(tmp_path: Path, text: str, fragment: str) -> None:
+    path = _write(tmp_path, "e.csv", text)
+    with pytest.raises(CaptureError, match=fragment):
+        open_capture(path, reader="csv")
+
+
+def test_utf16_is_refused_with_advice(tmp_path: Path) -> None:
+    path = tmp_path / "w.csv"
+    path.write_bytes("time,a\n0,1\n1,2\n".encode("utf-16"))
+    with pytest.raises(CaptureError, match="UTF-16"):
+        open_capture(path, reader="csv")
+
+
+# ------------------------------------------------------------------ chunking and streaming
+
+
+def test_chunk_boundaries_do_not_change_values_or_line_numbers(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    rows, values = _table(2000, 10000.0)
+    text = "time,a,b\n" + "\n".join(",".join(r) for r in rows) + "\n"
+    path = _write(tmp_path, "long.csv", text)
+    whole_info, whole = _read(path)
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 997)  # many small chunks, cut mid-line
+    info, data = _read(path, block_size=313)
+    assert info == whole_info
+    assert np.array_equal(data, whole) and np.array_equal(data, values)
+    bad = text.splitlines()
+    bad[1500] = "0.1499,1"  # line 1501
+    _write(tmp_path, "long.csv", "\n".join(bad) + "\n")
+    with pytest.raises(CaptureError, match="line 1501 has 2 values"):
+        open_capture(path)
+    t = np.delete(np.arange(2000) / 10000, 1700)
+    gap = "time,a\n" + "".join(f"{x:.9f},1\n" for x in t)
+    _write(tmp_path, "long.csv", gap)
+    with pytest.raises(CaptureError, match="irregular at line 1702"):
+        open_capture(path)
+
+
+def test_regular_clock_directly() -> None:
+    clock = RegularClock(resolution=1e-9)
+    t = np.arange(10_000) / 48000 + 3.0
+    for piece in np.array_split(t, 7):
+        clock.feed(np.round(piece, 9))
+    fit = clock.finish()
+    assert fit.sample_rate == 48000.0 and fit.t0 == 3.0 and fit.n == 10_000
