@@ -1,0 +1,140 @@
+"""Cam phase over time: static offset, jumped belt/chain, and a phaser that moves.
+
+``phi(t) = offset_deg + jumped_teeth * 720 / sprocket_teeth + phaser(t)`` in deg CA, positive =
+retarded (cam events later). The phaser holds ``initial_deg`` until its first move; each move
+starts from wherever the phaser is at that moment (so a move may interrupt the previous one).
+
+>>> cam = Cam(phaser=Phaser(moves=(PhaserMove("step", t_s=1.0, to_deg=20.0, tau_s=0.1),)))
+>>> p = CamPhase(cam)
+>>> [round(float(v), 6) for v in p.value([0.5, 1.1])]   # 20 * (1 - exp(-1))
+[0.0, 12.642411]
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from .scenario import Cam, Phaser, PhaserMove  # noqa: F401  (Phaser: doctest)
+
+
+class CamPhase:
+    """Phase of one cam, deg CA, and its rate, evaluated exactly at any time."""
+
+    def __init__(self, cam: Cam) -> None:
+        self.static_deg = float(cam.offset_deg + cam.jump_deg)
+        self.initial_deg = float(cam.phaser.initial_deg)
+        self.moves: tuple[PhaserMove, ...] = cam.phaser.moves
+        self._t = np.array([m.t_s for m in self.moves], dtype=float)
+        starts = []
+        p = self.initial_deg
+        for i, m in enumerate(self.moves):
+            if i > 0:
+                p = self._move_value(i - 1, starts[-1], np.array(m.t_s))[()]
+            starts.append(float(p))
+        #: phaser position at the start of each move
+        self.from_deg = tuple(starts)
+
+    @property
+    def moving(self) -> bool:
+        return bool(self.moves)
+
+    def _move_value(self, i: int, p0: float, t: np.ndarray) -> np.ndarray:
+        m = self.moves[i]
+        d = t - m.t_s
+        if m.kind == "step":
+            return m.to_deg + (p0 - m.to_deg) * np.exp(-d / m.tau_s)
+        return p0 + (m.to_deg - p0) * np.clip(d / m.duration_s, 0.0, 1.0)
+
+    def _move_rate(self, i: int, p0: float, t: np.ndarray) -> np.ndarray:
+        m = self.moves[i]
+        d = t - m.t_s
+        if m.kind == "step":
+            return (m.to_deg - p0) / m.tau_s * np.exp(-d / m.tau_s)
+        return np.where((d >= 0) & (d < m.duration_s), (m.to_deg - p0) / m.duration_s, 0.0)
+
+    def phaser(self, t: float | Sequence[float] | np.ndarray) -> np.ndarray:
+        """Phaser position alone, deg CA."""
+        t = np.asarray(t, dtype=float)
+        out = np.full_like(t, self.initial_deg)
+        if not self.moves:
+            return out
+        k = np.searchsorted(self._t, t, side="right") - 1
+        for i in range(len(self.moves)):
+            m = k == i
+            if np.any(m):
+                out[m] = self._move_value(i, self.from_deg[i], t[m])
+        return out
+
+    def value(self, t: float | Sequence[float] | np.ndarray) -> np.ndarray:
+        """Cam phase phi(t), deg CA (positive = retarded)."""
+        return self.static_deg + self.phaser(t)
+
+    def rate(self, t: float | Sequence[float] | np.ndarray) -> np.ndarray:
+        """d(phi)/dt, deg CA per second."""
+        t = np.asarray(t, dtype=float)
+        out = np.zeros_like(t)
+        if not self.moves:
+            return out
+        k = np.searchsorted(self._t, t, side="right") - 1
+        for i in range(len(self.moves)):
+            m = k == i
+            if np.any(m):
+                out[m] = self._move_rate(i, self.from_deg[i], t[m])
+        return out
+
+    def move_windows(self) -> list[tuple[float, float]]:
+        """(start, end) of each move; a step 'ends' when 99.99 % of it is done or the next move
+        starts."""
+        out = []
+        for i, m in enumerate(self.moves):
+            end = m.t_s + (m.tau_s * math.log(1e4) if m.kind == "step" else m.duration_s)
+            if i + 1 < len(self.moves):
+                end = min(end, self.moves[i + 1].t_s)
+            out.append((m.t_s, end))
+        return out
+
+    def summary(self) -> list[dict[str, Any]]:
+        """Each move as a JSON-able dict: kind, start/end, from/target/reached, peak rate, 10-90 %
+        time (of the full move, as planned)."""
+        out = []
+        for i, (m, (t0, t1)) in enumerate(zip(self.moves, self.move_windows(), strict=True)):
+            p0 = self.from_deg[i]
+            reached = float(self._move_value(i, p0, np.array(t1))[()])
+            travel = m.to_deg - p0
+            if m.kind == "step":
+                peak = abs(travel) / m.tau_s
+                t1090 = m.tau_s * math.log(9.0)
+            else:
+                peak = abs(travel) / m.duration_s
+                t1090 = 0.8 * m.duration_s
+            out.append(
+                {
+                    "kind": m.kind,
+                    "t_start_s": t0,
+                    "t_end_s": t1,
+                    "from_deg": self.static_deg + p0,
+                    "target_deg": self.static_deg + m.to_deg,
+                    "to_deg": self.static_deg + reached,
+                    "travel_deg": reached - p0,
+                    "peak_rate_deg_s": peak,
+                    "t10_90_s": t1090,
+                    "tau_s": m.tau_s if m.kind == "step" else None,
+                    "index": i,
+                }
+            )
+        return out
+
+    def trajectory(self, t_end: float, points_per_move: int = 64) -> list[list[float]]:
+        """[time_s, phase_deg] pairs that draw phi(t) over [0, t_end]: the ends, and dense points
+        during each move (holds are straight lines between them)."""
+        ts = {0.0, float(t_end)}
+        for t0, t1 in self.move_windows():
+            for t in np.linspace(t0, t1, points_per_move):
+                if 0.0 <= t <= t_end:
+                    ts.add(float(t))
+        tt = np.array(sorted(ts))
+        return [[float(a), float(b)] for a, b in zip(tt, self.value(tt), strict=True)]
