@@ -1,0 +1,139 @@
+"""Writing results: plain JSON (NaN becomes null) and atomic file replacement.
+
+A file written here is never seen half-written: the bytes go to a temporary file in the same
+folder, are flushed to disk, and then take the target's name in one ``os.replace``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+from toothcomb.decoders.errors import UsageError
+
+#: the value of ``--json`` that means "write to standard output"
+STDOUT = "-"
+
+
+def to_plain(value: Any) -> Any:
+    """Turn ``value`` into plain JSON types: floats stay floats, NaN and infinities become None.
+
+    Mappings become dicts with string keys, tuples/lists/arrays become lists, numpy scalars
+    become Python numbers.
+
+    >>> to_plain({"a": (1, float("nan")), "b": np.float32(0.5), "c": np.arange(2)})
+    {'a': [1, None], 'b': 0.5, 'c': [0, 1]}
+    """
+    if value is None or isinstance(value, (bool, str)):
+        return value
+    if isinstance(value, (np.bool_,)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        f = float(value)
+        return f if math.isfinite(f) else None
+    if isinstance(value, Mapping):
+        return {str(k): to_plain(v) for k, v in value.items()}
+    if isinstance(value, np.ndarray):
+        return [to_plain(v) for v in value.tolist()]
+    if isinstance(value, (list, tuple)):
+        return [to_plain(v) for v in value]
+    if hasattr(value, "to_json"):
+        return to_plain(value.to_json())
+    raise TypeError(f"cannot write a {type(value).__name__} as JSON")
+
+
+def dumps_json(data: Any, *, indent: int | None = 2) -> str:
+    """JSON text of ``data`` (after :func:`to_plain`), ending in a newline.
+
+    >>> dumps_json({"x": float("inf"), "y": 1.5}, indent=None)
+    '{"x": null, "y": 1.5}\\n'
+    """
+    return json.dumps(to_plain(data), indent=indent, allow_nan=False, ensure_ascii=False) + "\n"
+
+
+def _describe_target(path: Path, what: str) -> str:
+    return f"{what} {str(path)!r}"
+
+
+def write_atomic(path: str | os.PathLike[str], data: bytes | str, *, what: str = "file") -> None:
+    """Write ``data`` to ``path`` so that readers see either the old file or the whole new one.
+
+    The temporary file is created next to the target (same file system, so ``os.replace`` is
+    atomic) and removed if anything fails. A new file gets the usual permissions (0666 less the
+    umask); an existing file keeps its own. ``what`` names the file in error messages.
+
+    >>> import tempfile, pathlib
+    >>> d = pathlib.Path(tempfile.mkdtemp())
+    >>> write_atomic(d / "r.json", "{}\\n")
+    >>> (d / "r.json").read_text(), sorted(p.name for p in d.iterdir())
+    ('{}\\n', ['r.json'])
+    """
+    target = Path(path)
+    payload = data.encode("utf-8") if isinstance(data, str) else data
+    folder = target.parent if str(target.parent) else Path(".")
+    if target.is_dir():
+        raise UsageError(
+            f"cannot write {_describe_target(target, what)}: it is a folder; give a file name"
+        )
+    if not folder.is_dir():
+        raise UsageError(
+            f"cannot write {_describe_target(target, what)}: the folder {str(folder)!r} does not "
+            "exist; create it first or choose another place"
+        )
+    try:
+        mode = target.stat().st_mode & 0o7777
+    except OSError:
+        umask = os.umask(0)
+        os.umask(umask)
+        mode = 0o666 & ~umask
+    try:
+        fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
+    except OSError as exc:
+        raise UsageError(
+            f"cannot write {_describe_target(target, what)}: {exc.strerror or exc}; "
+            "choose a folder you can write to"
+        ) from exc
+    tmp = Path(tmp_name)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(payload)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, mode)
+        os.replace(tmp, target)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise UsageError(
+            f"cannot write {_describe_target(target, what)}: {exc.strerror or exc}; "
+            "check the free space and permissions there"
+        ) from exc
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
+def write_json(data: Any, target: str, *, stdout: IO[str] | None = None) -> None:
+    """Write ``data`` as JSON to ``target``: a file path (atomically) or ``"-"`` for stdout.
+
+    >>> import io
+    >>> buf = io.StringIO()
+    >>> write_json({"rpm": 800.0}, "-", stdout=buf)
+    >>> buf.getvalue()
+    '{\\n  "rpm": 800.0\\n}\\n'
+    """
+    text = dumps_json(data)
+    if target == STDOUT:
+        out = stdout if stdout is not None else sys.stdout
+        out.write(text)
+        out.flush()
+        return
+    write_atomic(target, text, what="JSON file")
