@@ -85,7 +85,7 @@ def describe_capture(
     from .frontends.vr import VrFrontEnd
     from .levels import measure_levels
     from .model import DEFAULT_BLOCK_SIZE, Edges
-    from .pipeline import PROBE_MAX_SAMPLES, PROBE_SECONDS, read_probe
+    from .pipeline import PROBE_MAX_SAMPLES, PROBE_SECONDS, crank_direction, read_probe
     from .readers import open_capture
     from .wheels.missing_tooth import identify
 
@@ -111,10 +111,10 @@ def describe_capture(
         fe_cls = HallFrontEnd if look.kind == "hall" else VrFrontEnd
         fe = fe_cls(fs, levels[c], **look.frontend_options)
         edges = Edges.concat([fe.process(probe[:, c], 0), fe.finish()])
-        for d in (1, -1):
-            g = identify(edges.times[edges.direction == d])
-            if g is not None and g.confidence > wheels.get(c, (0.0, ""))[0]:
-                wheels[c] = (g.confidence, g.spec.name)
+        direction, _polarity = crank_direction(edges, look.kind)
+        g = identify(edges.times[edges.direction == direction])
+        if g is not None:
+            wheels[c] = (g.confidence * min(1.0, g.gaps / 4.0), g.spec.name)
     crank = max(wheels, key=lambda c: wheels[c][0]) if wheels else None
     for c, name in enumerate(info.channels):
         look = looks[c]

@@ -114,42 +114,56 @@ def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, float]:
     return int(np.count_nonzero(good)), float(np.median(r))
 
 
+def crank_direction(
+    edges: Edges, sensor: str, wheel: MissingToothSpec | None = None
+) -> tuple[int, str]:
+    """Direction of the crank events the wheel is followed on, and the lead polarity.
+
+    Hall: the leading flank (the one that ends the level held through the gap). VR: the tooth
+    centre crossing, the direction whose intervals show the whole gap in one interval (the
+    other direction splits it in two, so its largest ratio is smaller); rising centre crossings
+    mean the leads are reversed.
+    """
+    if sensor == "hall":
+        direction, _share = leading_direction(edges)
+        return direction, "normal"
+    dirs = (1, -1)
+    times = {d: edges.times[edges.direction == d] for d in dirs}
+    if wheel is not None:
+        scores = {d: _hint_score(times[d], wheel) for d in dirs}
+    else:
+        guesses = {d: identify(times[d]) for d in dirs}
+        scores = {d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()}
+    direction = max(dirs, key=lambda d: (scores[d][0] > 0, scores[d][1]))
+    return direction, "normal" if direction == -1 else "reversed"
+
+
 def decode_crank(
-    edges: Edges, channel: int, sensor: str, name: str, wheel: MissingToothSpec | None
+    edges: Edges,
+    channel: int,
+    sensor: str,
+    name: str,
+    wheel: MissingToothSpec | None,
+    sample_rate: float,
 ) -> CrankDecode:
     """Find the event direction and the wheel, then follow the wheel tooth by tooth."""
     findings: list[Finding] = []
-    dirs = (1, -1)
-    times = {d: edges.times[edges.direction == d] for d in dirs}
-    if sensor == "hall":
-        direction, _share = leading_direction(edges)
-        polarity = "normal"
-    else:
-        if wheel is not None:
-            scores = {d: _hint_score(times[d], wheel) for d in dirs}
-        else:
-            guesses = {d: identify(times[d]) for d in dirs}
-            scores = {
-                d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()
-            }
-        # the tooth-centre crossings show the whole gap in one interval; the other crossings
-        # split it in two, so their largest ratio is smaller
-        direction = max(dirs, key=lambda d: (scores[d][0] > 0, scores[d][1]))
-        polarity = "normal" if direction == -1 else "reversed"
-        if polarity == "reversed":
-            findings.append(
-                Finding(
-                    "warning",
-                    "vr-reversed",
-                    f"crank VR leads on {name} are reversed: tooth centres cross zero rising; "
-                    "angles are measured on the correct crossings",
-                )
+    direction, polarity = crank_direction(edges, sensor, wheel)
+    if polarity == "reversed":
+        findings.append(
+            Finding(
+                "warning",
+                "vr-reversed",
+                f"crank VR leads on {name} are reversed: tooth centres cross zero rising; "
+                "angles are measured on the correct crossings",
             )
+        )
+    times = {d: edges.times[edges.direction == d] for d in (1, -1)}
     t = times[direction]
     guess = identify(t)
     if wheel is None:
         if guess is None:
-            raise DecodeError(_no_gap_reason(name, edges, t))
+            raise DecodeError(_no_gap_reason(name, t, sample_rate))
         spec = guess.spec
         how = f"identified from the tooth periods (confidence {guess.confidence:.2f})"
         if guess.confidence < 0.8:
@@ -175,8 +189,10 @@ def decode_crank(
             )
     track = decode_teeth(t, spec)
     if len(track.reference_times) == 0:
+        few = _too_few_samples(t, sample_rate)
         raise DecodeError(
-            f"no {spec.name} gap found on crank channel {name!r} in {len(t)} tooth events; "
+            few
+            or f"no {spec.name} gap found on crank channel {name!r} in {len(t)} tooth events; "
             "check the wheel (--wheel) and the channel (--crank)"
         )
     return CrankDecode(
@@ -184,7 +200,25 @@ def decode_crank(
     )
 
 
-def _no_gap_reason(name: str, edges: Edges, t: np.ndarray) -> str:
+def _too_few_samples(t: np.ndarray, sample_rate: float) -> str | None:
+    """The sentence for a crank sampled too coarsely to decode, or None."""
+    if len(t) < 3:
+        return None
+    spt = float(np.median(np.diff(t))) * sample_rate
+    if spt >= MIN_SAMPLES_PER_TOOTH:
+        return None
+    rate = 1.0 / float(np.median(np.diff(t)))
+    return (
+        f"{sample_rate:g} Hz gives {spt:.1f} samples per crank tooth at the observed "
+        f"{rate:.0f} teeth per second; at least {MIN_SAMPLES_PER_TOOTH:g} are needed: record "
+        f"at {MIN_SAMPLES_PER_TOOTH * rate:.0f} Hz or more"
+    )
+
+
+def _no_gap_reason(name: str, t: np.ndarray, sample_rate: float) -> str:
+    few = _too_few_samples(t, sample_rate)
+    if few:
+        return few
     if len(t) < 8:
         return f"crank channel {name!r} shows only {len(t)} tooth events; no wheel can be decoded"
     return (
@@ -277,6 +311,10 @@ def _pick_crank(
             if best is None or key > best[0]:  # type: ignore[operator]
                 best = (key, c)  # type: ignore[assignment]
     if best is None:
+        for c, e in edges.items():
+            few = _too_few_samples(e.times[e.direction == 1], info.sample_rate)
+            if few and looks[c].edge_rate_hz == max(lk.edge_rate_hz for lk in looks.values()):
+                raise DecodeError(f"channel {info.channels[c]!r}: {few}")
         have = ", ".join(f"{info.channels[c]} ({looks[c].kind})" for c in looks)
         raise DecodeError(
             f"no channel shows a missing-tooth crank wheel (channels: {have}); give the crank "
@@ -343,7 +381,19 @@ def decode_capture(
     else:
         choices["crank"] = f"{info.channels[crank]}: given by the user"
     crank_name = info.channels[crank]
-    cd = decode_crank(edges[crank], crank, looks[crank].kind, crank_name, wheel)
+    try:
+        cd = decode_crank(edges[crank], crank, looks[crank].kind, crank_name, wheel, fs)
+    except DecodeError as exc:
+        # a tooth train sampled too coarsely shows up as a strong spectral line
+        line = looks[crank].line_hz
+        if line > 0 and fs / line < MIN_SAMPLES_PER_TOOTH:
+            raise DecodeError(
+                f"crank channel {crank_name!r}: {fs:g} Hz gives {fs / line:.1f} samples per "
+                f"tooth at the {line:.0f} teeth per second its spectrum shows; at least "
+                f"{MIN_SAMPLES_PER_TOOTH:g} are needed: record at "
+                f"{MIN_SAMPLES_PER_TOOTH * line:.0f} Hz or more"
+            ) from exc
+        raise
     choices["crank_sensor"] = f"{looks[crank].kind}: {looks[crank].reason}"
     choices["wheel"] = f"{cd.spec.name}: {cd.how}"
     spt = _samples_per_tooth(cd.track, fs)

@@ -6,7 +6,9 @@ Decided from the channel's level statistics and a look at its first seconds (the
   units;
 - **noise**: the robust peak-to-peak is within what Gaussian noise of the measured noise level
   gives (white noise of rms sigma spans about 6.2 sigma between its 0.1th and 99.9th
-  percentiles);
+  percentiles) *and* the spectrum has no line standing out of it (a tooth train, even one
+  sampled too coarsely for its sample-to-sample differences to tell it from noise, puts a strong
+  line at the tooth frequency);
 - **hall** or **vr**: by how *sharp* the signal's steps are. A Hall output switches within
   microseconds, so across 10 us (or two samples, whichever is longer) nearly its whole step is
   already done; a VR waveform is smooth, and the same span covers only a small part of its swing.
@@ -22,6 +24,7 @@ import numpy as np
 
 from ..frontends.hall import HallFrontEnd
 from ..model import ChannelLevels, Edges
+from ..wheels.missing_tooth import looks_like_clipped_vr
 
 #: share of a flank's step covered within the sharpness span above which a signal is Hall-like
 # common practice, no source: measured margins are wide (Hall >= 0.7, VR <= 0.4 on simulated
@@ -32,6 +35,44 @@ SHARP_SPAN_S = 10e-6
 # source: for white Gaussian noise the 0.1th and 99.9th percentiles lie at -/+3.09 sigma
 # (standard normal quantile), a span of 6.18 sigma; below about 10 sigma a channel is noise.
 NOISE_SPAN_SIGMAS = 10.0
+
+
+#: largest periodogram value over its median below which a spectrum has no line
+# source: periodogram values of white Gaussian noise are exponentially distributed (S. M. Kay,
+# "Modern Spectral Estimation", Prentice Hall 1988, ch. 4), so over n = 2**17 bins the largest
+# is about ln(n) = 11.8 times the mean, i.e. 17 times the median (mean * ln 2); 100 leaves a
+# wide margin
+LINE_RATIO = 100.0
+
+
+def strongest_line(x: np.ndarray, sample_rate: float, n_max: int = 1 << 18) -> tuple[float, float]:
+    """(frequency in Hz, height over the median) of the strongest line in the spectrum of ``x``.
+
+    >>> t = np.arange(48000) / 48000.0
+    >>> f, h = strongest_line(np.sin(2 * np.pi * 1000.0 * t), 48000.0)
+    >>> round(f), h > 1e6
+    (1000, True)
+    """
+    x = np.asarray(x, dtype=float)[:n_max]
+    if len(x) < 64:
+        return 0.0, 0.0
+    p = np.abs(np.fft.rfft(x - x.mean())) ** 2
+    p = p[1:]
+    med = float(np.median(p))
+    k = int(np.argmax(p))
+    height = float(p[k]) / med if med > 0 else (np.inf if p[k] > 0 else 0.0)
+    return (k + 1) * sample_rate / len(x), height
+
+
+def has_lines(x: np.ndarray, n_max: int = 1 << 18) -> bool:
+    """True when the spectrum of ``x`` has a line standing far out of its noise floor.
+
+    >>> rng = np.random.default_rng(0)
+    >>> n = rng.normal(size=50000)
+    >>> has_lines(n), has_lines(n + 0.5 * np.sin(np.arange(50000) * 2 * np.pi / 7))
+    (False, True)
+    """
+    return strongest_line(x, 1.0, n_max)[1] > LINE_RATIO
 
 
 @dataclass(frozen=True)
@@ -46,6 +87,9 @@ class ChannelLook:
     sharpness: float = float("nan")
     #: settings for the chosen front end, from its calibration on the probe
     frontend_options: dict[str, Any] = field(default_factory=dict)
+    #: frequency of the strongest line in the channel's spectrum (Hz; the tooth frequency of
+    #: a crank signal), 0 when there is none
+    line_hz: float = 0.0
 
 
 def _sharpness(probe: np.ndarray, edges: Edges, sample_rate: float) -> float:
@@ -71,7 +115,7 @@ def look_at_channel(
     step = 2.0 ** -15 if np.isfinite(levels.maximum) and abs(levels.maximum) <= 1.0 else 0.0
     if not np.isfinite(span) or span <= max(1e-9, 4 * step):
         return ChannelLook("flat", 1.0, f"it is flat (peak-to-peak {span:.3g})")
-    if levels.noise > 0 and span < NOISE_SPAN_SIGMAS * levels.noise:
+    if levels.noise > 0 and span < NOISE_SPAN_SIGMAS * levels.noise and not has_lines(probe):
         return ChannelLook(
             "noise",
             0.9,
@@ -88,6 +132,12 @@ def look_at_channel(
         if len(edges) < 2 or not math.isfinite(sharp):
             kind, conf = "vr", 0.5
             why = "no sharp steps: treated as a VR (analog) signal"
+        elif sharp >= SHARP_HALL and looks_like_clipped_vr(edges):
+            kind, conf = "vr", 0.7
+            why = (
+                "its steps are sharp, but it swings across the wheel gap as a VR voltage "
+                "does: a clipped VR sensor"
+            )
         elif sharp >= SHARP_HALL:
             kind = "hall"
             conf = min(1.0, 0.5 + (sharp - SHARP_HALL))
@@ -108,4 +158,5 @@ def look_at_channel(
         fopts = opts
     else:
         fopts = VrFrontEnd.calibrate(probe, sample_rate, levels)
-    return ChannelLook(kind, conf, why, rate, sharp, fopts)
+    line_hz, height = strongest_line(probe, sample_rate)
+    return ChannelLook(kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0)

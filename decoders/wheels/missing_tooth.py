@@ -190,16 +190,10 @@ def identify(times: np.ndarray) -> WheelGuess | None:
     return WheelGuess(MissingToothSpec(n, m), consistency * near, len(cand), float(np.median(r)))
 
 
-def leading_direction(edges: Edges) -> tuple[int, float]:
-    """For a two-level (Hall) crank signal: the direction of the leading flank, and a score.
-
-    The level held through the gap is the "no tooth" level, held far longer than between any
-    two teeth; the transition that ends it is tooth 1's leading flank. Returns (+1 or -1, share
-    of long levels that end in that direction).
-    """
+def long_levels(edges: Edges) -> dict[int, int]:
+    """How many levels of a two-level signal last far longer than their neighbours, by the
+    direction of the transition that ends them (+1 rising, -1 falling)."""
     t = edges.times
-    if len(t) < 6:
-        return 1, 0.0
     dur = np.diff(t)
     d = edges.direction[1:]
     score = {}
@@ -213,9 +207,40 @@ def leading_direction(edges: Edges) -> tuple[int, float]:
         win = np.lib.stride_tricks.sliding_window_view(durations, 9)
         local = np.median(win, axis=1)
         score[sign] = int(np.count_nonzero(durations[4:-4] > 1.8 * local))
+    return score
+
+
+def leading_direction(edges: Edges) -> tuple[int, float]:
+    """For a two-level (Hall) crank signal: the direction of the leading flank, and a score.
+
+    The level held through the gap is the "no tooth" level, held far longer than between any
+    two teeth; the transition that ends it is tooth 1's leading flank. Returns (+1 or -1, share
+    of long levels that end in that direction).
+    """
+    if len(edges) < 6:
+        return 1, 0.0
+    score = long_levels(edges)
     total = score[1] + score[-1]
     best = 1 if score[1] >= score[-1] else -1
     return best, (score[best] / total if total else 0.0)
+
+
+def looks_like_clipped_vr(edges: Edges) -> bool:
+    """True when a signal that switches like a Hall output shows its wheel gap the way a VR
+    sensor does. A Hall output holds one level through the gap and its flanks alternate rising,
+    falling, rising. A VR voltage swings slowly across the gap (the flux falls after the last
+    tooth and rises towards tooth 1); clipped into a square wave, it shows either a long level
+    of each polarity at every gap, or a slow swing there that breaks the alternation once per
+    revolution."""
+    if len(edges) < 40:
+        return False
+    score = long_levels(edges)
+    total = score[1] + score[-1]
+    if total < 2 or total > 0.2 * len(edges):
+        return False  # no gaps, or long levels everywhere (a cam pattern, not a crank wheel)
+    both = min(score[1], score[-1]) > 0.35 * total
+    breaks = int(np.count_nonzero(np.diff(edges.direction.astype(int)) == 0))
+    return both or breaks >= 0.5 * total
 
 
 # -- tooth-by-tooth decoding --------------------------------------------------------------------
