@@ -10,8 +10,6 @@ import pytest
 from toothcomb.decoders.result import DecodeResult
 from toothcomb.decoders.simulate import Scenario, simulate
 
-collect_ignore = ["../cli/__main__.py"]
-
 
 def circ_diff(a: float, b: float, period: float = 360.0) -> float:
     return (a - b + period / 2) % period - period / 2
