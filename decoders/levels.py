@@ -7,7 +7,7 @@ channel:
   samples; blocks are combined with the pairwise update of Chan, Golub & LeVeque (1979), which
   stays accurate on long captures with a large offset;
 - ``percentiles`` at :attr:`ChannelLevels.POINTS`: from a deterministic subsample, every k-th
-  sample by its index in the capture, ``k = max(1, ceil(n_samples / 2_000_000))``;
+  sample by its index in the capture, ``k = max(1, ceil(n_samples / 2**18))``;
 - ``noise``: the median of ``|x[i] - x[i-1]|`` over the subsample positions, divided by
   ``0.6745 * sqrt(2)`` (for white Gaussian noise this is its standard deviation);
 - ``clipped_fraction``: the share of samples that sit exactly at the channel's minimum or maximum,
@@ -33,7 +33,7 @@ __all__ = ["CELL", "SUBSAMPLE_TARGET", "check_finite", "measure_levels", "subsam
 #: samples per internal cell (cells start at multiples of this capture index)
 CELL = 1 << 16
 #: the subsample for percentiles and noise holds at most about this many samples
-SUBSAMPLE_TARGET = 2_000_000
+SUBSAMPLE_TARGET = 1 << 18
 #: an extreme value counts as clipping when at least this share of the samples sit at it
 CLIP_SHARE = 1e-3
 #: median absolute deviation of a standard normal (0.6745) times sqrt(2) for a difference of two
@@ -45,7 +45,7 @@ Progress = Callable[[int, int], None]
 def subsample_step(n_samples: int) -> int:
     """Every how many samples the percentile subsample takes one.
 
-    >>> subsample_step(1_000_000), subsample_step(2_000_001), subsample_step(0)
+    >>> subsample_step(200_000), subsample_step(2**18 + 1), subsample_step(0)
     (1, 2, 1)
     """
     return max(1, math.ceil(n_samples / SUBSAMPLE_TARGET))

@@ -5,19 +5,23 @@
 
 1. a first streaming pass measures every channel's levels (NaN and flat channels are caught);
 2. the first seconds (the *probe*) tell what each channel carries and calibrate the front ends;
-3. a second streaming pass turns every channel into edges, block by block (the front ends keep
-   their own state across blocks, so the edges do not depend on the block size);
-4. the crank channel's edges are decoded against its wheel, which gives crank angle as a
-   function of time; every cam edge is placed on it, grouped and measured.
+3. the edges of the first seconds identify the crank channel, its event direction (leading flank
+   or tooth-centre crossing, which also tells reversed VR leads) and the wheel;
+4. a second streaming pass turns every channel into edges block by block, follows the wheel
+   tooth by tooth, places every cam edge on the crank angle the teeth give, and gathers the
+   crank's statistics and jitter as it goes;
+5. at the end the cam events are grouped into the distinct edges of each cam pattern.
 
-Memory is bounded in the number of samples: only the probe and one block are ever held; what is
-kept for the whole capture is the edges (a few per tooth).
+Every stage keeps its own state across blocks, so nothing depends on the block size. Memory is
+bounded in the length of the capture: only the probe, one block and a few teeth are held; what is
+kept for the whole capture is the reference events and the cam events (each reported anyway).
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -26,13 +30,11 @@ from .analysis.cams import (
     build_cam_result,
     choose_phase,
     is_symmetric,
-    locate,
-    tooth_level_direction,
     vr_centre_direction,
 )
 from .analysis.identify import ChannelLook, look_at_channel
-from .analysis.jitter import crank_jitter
-from .analysis.timeline import CrankTimeline
+from .analysis.jitter import CrankJitter
+from .analysis.timeline import CamLocator
 from .errors import DecodeError, UsageError
 from .levels import check_finite, measure_levels
 from .model import CaptureInfo, CaptureSource, ChannelLevels, Edges
@@ -43,7 +45,7 @@ from .result import CamResult, CrankResult, DecodeResult, Finding, RpmStats
 from .wheels.base import ToothTrack
 from .wheels.missing_tooth import (
     MissingToothSpec,
-    decode_teeth,
+    ToothTracker,
     gap_candidates,
     gap_ratios,
     identify,
@@ -60,6 +62,8 @@ PROBE_MAX_SAMPLES = 1 << 21
 # common practice, no source: below about 8 samples per tooth the flank/crossing interpolation
 # and the gap ratios both degrade quickly
 MIN_SAMPLES_PER_TOOTH = 8.0
+#: points in the engine speed trace kept for plots
+TRACE_POINTS = 2000
 
 
 def read_probe(source: CaptureSource, n: int, block_size: int) -> np.ndarray:
@@ -75,21 +79,6 @@ def read_probe(source: CaptureSource, n: int, block_size: int) -> np.ndarray:
     if not parts:
         return np.empty((0, source.info.n_channels))
     return np.concatenate(parts)
-
-
-@dataclass(frozen=True)
-class CrankDecode:
-    """The crank channel decoded."""
-
-    channel: int
-    sensor: str
-    spec: MissingToothSpec
-    #: +1/-1: direction of the events the wheel was followed on
-    direction: int
-    polarity: str
-    track: ToothTrack
-    findings: tuple[Finding, ...]
-    how: str
 
 
 def _wheel_from_hint(text: str) -> MissingToothSpec:
@@ -138,15 +127,29 @@ def crank_direction(
     return direction, "normal" if direction == -1 else "reversed"
 
 
-def decode_crank(
+@dataclass(frozen=True)
+class CrankPlan:
+    """How the crank channel is to be followed: worked out from the first seconds."""
+
+    channel: int
+    sensor: str
+    spec: MissingToothSpec
+    #: +1/-1: direction of the events the wheel is followed on
+    direction: int
+    polarity: str
+    how: str
+    findings: tuple[Finding, ...] = ()
+
+
+def plan_crank(
     edges: Edges,
     channel: int,
     sensor: str,
     name: str,
     wheel: MissingToothSpec | None,
     sample_rate: float,
-) -> CrankDecode:
-    """Find the event direction and the wheel, then follow the wheel tooth by tooth."""
+) -> CrankPlan:
+    """Find the event direction and the wheel from the first seconds' edges."""
     findings: list[Finding] = []
     direction, polarity = crank_direction(edges, sensor, wheel)
     if polarity == "reversed":
@@ -158,8 +161,7 @@ def decode_crank(
                 "angles are measured on the correct crossings",
             )
         )
-    times = {d: edges.times[edges.direction == d] for d in (1, -1)}
-    t = times[direction]
+    t = edges.times[edges.direction == direction]
     guess = identify(t)
     if wheel is None:
         if guess is None:
@@ -187,17 +189,7 @@ def decode_crank(
                     "given",
                 )
             )
-    track = decode_teeth(t, spec)
-    if len(track.reference_times) == 0:
-        few = _too_few_samples(t, sample_rate)
-        raise DecodeError(
-            few
-            or f"no {spec.name} gap found on crank channel {name!r} in {len(t)} tooth events; "
-            "check the wheel (--wheel) and the channel (--crank)"
-        )
-    return CrankDecode(
-        channel, sensor, spec, direction, polarity, track, tuple(findings) + track.findings, how
-    )
+    return CrankPlan(channel, sensor, spec, direction, polarity, how, tuple(findings))
 
 
 def _too_few_samples(t: np.ndarray, sample_rate: float) -> str | None:
@@ -228,69 +220,59 @@ def _no_gap_reason(name: str, t: np.ndarray, sample_rate: float) -> str:
     )
 
 
-def _stream_edges(
-    source: CaptureSource,
-    frontends: dict[int, object],
-    block_size: int,
-    progress: Progress | None,
-) -> dict[int, Edges]:
-    parts: dict[int, list[Edges]] = {c: [] for c in frontends}
-    total = source.info.n_samples
-    for block in source.blocks(block_size):
-        for c, fe in frontends.items():
-            parts[c].append(fe.process(block.data[:, c], block.start))  # type: ignore[attr-defined]
-        if progress is not None:
-            progress("edges", block.stop, total)
-    for c, fe in frontends.items():
-        parts[c].append(fe.finish())  # type: ignore[attr-defined]
-    return {c: Edges.concat(p) for c, p in parts.items()}
+class CrankStats:
+    """Engine speed, revolutions, reference events and a speed trace, gathered from the teeth
+    as they stream in."""
 
+    def __init__(self, duration_s: float) -> None:
+        self.refs: list[np.ndarray] = []
+        self.rpm_min = math.inf
+        self.rpm_max = -math.inf
+        self.deg = 0.0
+        self.sec = 0.0
+        self.min_pitch_period = math.inf
+        self._last: tuple[int, float, float, float] | None = None  # run, time, angle, first a
+        self._first: dict[int, tuple[float, float]] = {}
+        self._bucket = max(duration_s / TRACE_POINTS, 1e-9)
+        self._next_bucket = -math.inf
+        self.trace: list[tuple[float, float]] = []
+        self.findings: list[Finding] = []
+        self.extra = self.missing = self.losses = 0
 
-def _samples_per_tooth(track: ToothTrack, sample_rate: float) -> float:
-    one = np.flatnonzero(track.pitches == 1)
-    one = one[one > 0]
-    if len(one) == 0:
-        return float("inf")
-    dt = track.times[one] - track.times[one - 1]
-    return float(np.min(dt) * sample_rate)
+    def add(self, track: ToothTrack) -> None:
+        self.refs.append(track.reference_times)
+        self.findings.extend(track.findings)
+        self.extra, self.missing, self.losses = track.extra, track.missing, track.sync_losses
+        if len(track) == 0:
+            return
+        t, a, r, p = track.times, track.angles, track.run, track.pitches
+        if self._last is not None:
+            t = np.concatenate(([self._last[1]], t))
+            a = np.concatenate(([self._last[2]], a))
+            r = np.concatenate(([self._last[0]], r))
+            p = np.concatenate(([0], p))
+        same = r[1:] == r[:-1]
+        dt = np.diff(t)[same]
+        dp = np.diff(a)[same]
+        if len(dt):
+            rpm = dp / dt / 6.0
+            self.rpm_min = min(self.rpm_min, float(rpm.min()))
+            self.rpm_max = max(self.rpm_max, float(rpm.max()))
+            self.deg += float(dp.sum())
+            self.sec += float(dt.sum())
+            one = (p[1:][same] == 1) & (dp > 0)
+            if np.any(one):
+                self.min_pitch_period = min(self.min_pitch_period, float(dt[one].min()))
+            mid = 0.5 * (t[1:] + t[:-1])[same]
+            for tm, v in zip(mid, rpm, strict=True):
+                if tm >= self._next_bucket:
+                    self.trace.append((float(tm), float(v)))
+                    self._next_bucket = (math.floor(tm / self._bucket) + 1) * self._bucket
+        self._last = (int(r[-1]), float(t[-1]), float(a[-1]), 0.0)
 
-
-def _crank_result(
-    info: CaptureInfo, cd: CrankDecode, findings: list[Finding]
-) -> CrankResult:
-    track = cd.track
-    times_mid, rpm = track.rpm_per_tooth()
-    span_deg = 0.0
-    span_s = 0.0
-    for idx in track.runs:
-        if len(idx) >= 2:
-            span_deg += track.angles[idx[-1]] - track.angles[idx[0]]
-            span_s += track.times[idx[-1]] - track.times[idx[0]]
-    mean_rpm = span_deg / span_s / 6.0 if span_s > 0 else float("nan")
-    if len(rpm):
-        rpm_stats = RpmStats(float(np.min(rpm)), float(mean_rpm), float(np.max(rpm)))
-    else:
-        rpm_stats = RpmStats(float("nan"), float(mean_rpm), float("nan"))
-    step = max(1, len(rpm) // 2000)
-    trace = tuple((float(a), float(b)) for a, b in zip(times_mid[::step], rpm[::step], strict=True))
-    return CrankResult(
-        channel=info.channels[cd.channel],
-        sensor=cd.sensor,  # type: ignore[arg-type]
-        wheel=cd.spec.name,
-        positions=cd.spec.positions,
-        missing=cd.spec.missing,
-        polarity=cd.polarity,  # type: ignore[arg-type]
-        event_direction="rising" if cd.direction > 0 else "falling",
-        rpm=rpm_stats,
-        revolutions=int(span_deg // 360.0),
-        sync_losses=track.sync_losses,
-        reference_times_s=tuple(float(x) for x in track.reference_times),
-        extra_teeth=track.extra,
-        missing_teeth=track.missing,
-        jitter=crank_jitter(track),
-        findings=tuple(cd.findings) + tuple(findings),
-        rpm_trace=trace,
-    )
+    @property
+    def reference_times(self) -> np.ndarray:
+        return np.concatenate(self.refs) if self.refs else np.empty(0)
 
 
 def _pick_crank(
@@ -323,6 +305,60 @@ def _pick_crank(
     return best[1], "identified: the channel whose tooth periods show a missing-tooth gap"
 
 
+def _stream_prefix(
+    source: CaptureSource,
+    channels: list[int],
+    looks: dict[int, ChannelLook],
+    levels: tuple[ChannelLevels, ...],
+    seconds: float,
+    block_size: int,
+) -> tuple[dict[int, Edges], bool]:
+    """Edges of the first ``seconds`` of each channel; also whether that was the whole capture."""
+    fs = source.info.sample_rate
+    stop = int(min(source.info.n_samples, max(1.0, seconds * fs)))
+    fes = {c: _frontend(looks[c], fs, levels[c]) for c in channels}
+    parts: dict[int, list[Edges]] = {c: [] for c in channels}
+    for block in source.blocks(block_size):
+        data = block.data[: max(0, stop - block.start)]
+        for c, fe in fes.items():
+            parts[c].append(fe.process(data[:, c], block.start))
+        if block.start + len(data) >= stop:
+            break
+    for c, fe in fes.items():
+        parts[c].append(fe.finish())
+    return {c: Edges.concat(p) for c, p in parts.items()}, stop >= source.info.n_samples
+
+
+def _frontend(look: ChannelLook, sample_rate: float, levels: ChannelLevels):
+    return plugin(FRONTENDS, look.kind)(sample_rate, levels, **look.frontend_options)
+
+
+@dataclass
+class _CamState:
+    """What is gathered about one cam channel during the streaming pass."""
+
+    leading: int = 1
+    direction_only: int | None = None  # VR: only the tooth-centre crossings are events
+    events: list[tuple[np.ndarray, ...]] = field(default_factory=list)
+    high_s: float = 0.0
+    total_s: float = 0.0
+    last: tuple[float, int] | None = None  # time, direction of the last edge seen
+
+    def levels(self, e: Edges) -> None:
+        """Time spent high / in total, for the tooth level of a two-level cam."""
+        if len(e) == 0:
+            return
+        t = e.times
+        d = e.direction
+        if self.last is not None:
+            t = np.concatenate(([self.last[0]], t))
+            d = np.concatenate(([self.last[1]], d))
+        dur = np.diff(t)
+        self.high_s += float(np.sum(dur[d[:-1] > 0]))
+        self.total_s += float(np.sum(dur))
+        self.last = (float(t[-1]), int(d[-1]))
+
+
 def decode_capture(
     path: str, options: DecodeOptions | None = None, progress: Progress | None = None
 ) -> DecodeResult:
@@ -348,13 +384,16 @@ def decode_capture(
             raise UsageError("the same cam channel is given twice")
         n_probe = int(min(info.n_samples, PROBE_MAX_SAMPLES, max(1, PROBE_SECONDS * fs)))
         probe = read_probe(src, n_probe, opts.block_size)
-        used = sorted({crank, *cams} - {None}) if (crank is not None and cams) else list(
-            range(info.n_channels)
+        used = (
+            sorted({crank, *cams} - {None})
+            if (crank is not None and cams)
+            else list(range(info.n_channels))
         )
         looks: dict[int, ChannelLook] = {}
         for c in used:
             hint = opts.crank_sensor if c == crank else opts.cam_sensor
             looks[c] = look_at_channel(probe[:, c], fs, levels[c], hint=hint)
+        del probe
         if crank is not None and looks[crank].kind in ("flat", "noise"):
             raise DecodeError(
                 f"crank channel {info.channels[crank]!r} has no usable signal: "
@@ -367,37 +406,121 @@ def decode_capture(
                 + "; ".join(f"{info.channels[c]}: {looks[c].reason}" for c in used)
                 + ")"
             )
-        frontends = {
-            c: plugin(FRONTENDS, looks[c].kind)(fs, levels[c], **looks[c].frontend_options)
-            for c in live
-        }
-        edges = _stream_edges(src, frontends, opts.block_size, progress)
 
-    choices: dict[str, str] = {}
-    global_findings: list[Finding] = []
-    if crank is None:
-        crank, why = _pick_crank({c: edges[c] for c in live}, looks, info)
+        # -- the first seconds: which channel is the crank, which way, which wheel --
+        choices: dict[str, str] = {}
+        seconds = PROBE_SECONDS
+        while True:
+            head, whole = _stream_prefix(src, live, looks, levels, seconds, opts.block_size)
+            try:
+                if crank is None:
+                    c_pick, why = _pick_crank(head, looks, info)
+                else:
+                    c_pick, why = crank, "given by the user"
+                name = info.channels[c_pick]
+                plan = plan_crank(head[c_pick], c_pick, looks[c_pick].kind, name, wheel, fs)
+                break
+            except DecodeError as exc:
+                if whole:
+                    _too_coarse(exc, looks, crank, info)
+                    raise
+                seconds *= 4.0
+        crank = c_pick
         choices["crank"] = f"{info.channels[crank]}: {why}"
-    else:
-        choices["crank"] = f"{info.channels[crank]}: given by the user"
-    crank_name = info.channels[crank]
-    try:
-        cd = decode_crank(edges[crank], crank, looks[crank].kind, crank_name, wheel, fs)
-    except DecodeError as exc:
-        # a tooth train sampled too coarsely shows up as a strong spectral line
-        line = looks[crank].line_hz
-        if line > 0 and fs / line < MIN_SAMPLES_PER_TOOTH:
+        choices["crank_sensor"] = f"{looks[crank].kind}: {looks[crank].reason}"
+        choices["wheel"] = f"{plan.spec.name}: {plan.how}"
+        if not cams:
+            cams = [c for c in live if c != crank]
+        state: dict[int, _CamState] = {c: _CamState() for c in cams}
+        for c in cams:
+            if looks[c].kind == "vr":
+                centre = vr_centre_direction(head[c])
+                state[c].direction_only = centre
+                state[c].leading = centre
+        del head
+
+        # -- the whole capture, block by block --
+        frontends = {c: _frontend(looks[c], fs, levels[c]) for c in [crank, *cams] if c in live}
+        tracker = ToothTracker(plan.spec)
+        locator = CamLocator(max_pitches=plan.spec.missing + 1)
+        jitter = CrankJitter(plan.spec.pitch_deg)
+        stats = CrankStats(info.duration_s)
+
+        def take(edges: dict[int, Edges], teeth: ToothTrack) -> None:
+            for c, e in edges.items():
+                if c == crank:
+                    continue
+                st = state[c]
+                if st.direction_only is None:
+                    st.levels(e)
+                else:
+                    e = e.select(e.direction == st.direction_only)
+                locator.add_cam(c, e.times, e.direction)
+            jitter.add(teeth)
+            stats.add(teeth)
+            for c, ev in locator.add_teeth(teeth).items():
+                state[c].events.append(ev)
+
+        total = info.n_samples
+        for block in src.blocks(opts.block_size):
+            edges = {c: fe.process(block.data[:, c], block.start) for c, fe in frontends.items()}
+            ce = edges[crank]
+            teeth = tracker.feed(ce.times[ce.direction == plan.direction])
+            take(edges, teeth)
+            settled = [getattr(frontends[c], "settled_s", 0.0) for c in cams if c in frontends]
+            locator.forget_before(min(settled, default=math.inf))
+            if progress is not None:
+                progress("edges", block.stop, total)
+        edges = {c: fe.finish() for c, fe in frontends.items()}
+        ce = edges[crank]
+        teeth = tracker.feed(ce.times[ce.direction == plan.direction])
+        take(edges, teeth)
+        take({}, tracker.finish())
+        jitter.flush()
+        for c, ev in locator.finish().items():
+            state[c].events.append(ev)
+
+    refs = stats.reference_times
+    if len(refs) == 0:
+        _too_coarse(DecodeError("no reference event"), looks, crank, info)
+        raise DecodeError(
+            f"no {plan.spec.name} gap found on crank channel {info.channels[crank]!r}; check the "
+            "wheel (--wheel) and the channel (--crank)"
+        )
+    return _result(info, plan, stats, jitter, cams, state, locator, looks, choices, fs)
+
+
+def _too_coarse(
+    exc: DecodeError, looks: dict[int, ChannelLook], crank: int | None, info: CaptureInfo
+) -> None:
+    """Replace a failure by the sentence about too few samples when that is the cause."""
+    fs = info.sample_rate
+    cands = [crank] if crank is not None else list(looks)
+    for c in cands:
+        line = looks[c].line_hz
+        if line > 0 and fs / line < MIN_SAMPLES_PER_TOOTH and looks[c].kind in ("hall", "vr"):
             raise DecodeError(
-                f"crank channel {crank_name!r}: {fs:g} Hz gives {fs / line:.1f} samples per "
-                f"tooth at the {line:.0f} teeth per second its spectrum shows; at least "
+                f"crank channel {info.channels[c]!r}: {fs:g} Hz gives {fs / line:.1f} samples "
+                f"per tooth at the {line:.0f} teeth per second its spectrum shows; at least "
                 f"{MIN_SAMPLES_PER_TOOTH:g} are needed: record at "
                 f"{MIN_SAMPLES_PER_TOOTH * line:.0f} Hz or more"
             ) from exc
-        raise
-    choices["crank_sensor"] = f"{looks[crank].kind}: {looks[crank].reason}"
-    choices["wheel"] = f"{cd.spec.name}: {cd.how}"
-    spt = _samples_per_tooth(cd.track, fs)
-    crank_findings: list[Finding] = []
+
+
+def _result(
+    info: CaptureInfo,
+    plan: CrankPlan,
+    stats: CrankStats,
+    jitter: CrankJitter,
+    cams: list[int],
+    state: dict[int, _CamState],
+    locator: CamLocator,
+    looks: dict[int, ChannelLook],
+    choices: dict[str, str],
+    fs: float,
+) -> DecodeResult:
+    crank_findings: list[Finding] = list(plan.findings) + stats.findings
+    spt = stats.min_pitch_period * fs
     if spt < MIN_SAMPLES_PER_TOOTH:
         crank_findings.append(
             Finding(
@@ -407,58 +530,55 @@ def decode_capture(
                 f"least {MIN_SAMPLES_PER_TOOTH:g} are needed for precise timing",
             )
         )
-    timeline = CrankTimeline(cd.track, max_pitches=cd.spec.missing + 1)
+    mean_rpm = stats.deg / stats.sec / 6.0 if stats.sec > 0 else float("nan")
+    if stats.sec > 0:
+        rpm = RpmStats(stats.rpm_min, mean_rpm, stats.rpm_max)
+    else:
+        rpm = RpmStats(float("nan"), mean_rpm, float("nan"))
+    crank_result = CrankResult(
+        channel=info.channels[plan.channel],
+        sensor=plan.sensor,  # type: ignore[arg-type]
+        wheel=plan.spec.name,
+        positions=plan.spec.positions,
+        missing=plan.spec.missing,
+        polarity=plan.polarity,  # type: ignore[arg-type]
+        event_direction="rising" if plan.direction > 0 else "falling",
+        rpm=rpm,
+        revolutions=int(stats.deg // 360.0),
+        sync_losses=stats.losses,
+        reference_times_s=tuple(float(x) for x in stats.reference_times),
+        extra_teeth=stats.extra,
+        missing_teeth=stats.missing,
+        jitter=jitter.result(),
+        findings=tuple(crank_findings),
+        rpm_trace=tuple(stats.trace),
+    )
 
-    if not cams:
-        cams = [c for c in live if c != crank]
-    # locate every cam's events, then fix the cycle phase from the first cam that can
-    located: dict[int, tuple[CamEvents, int, int, list[Finding]]] = {}
+    located: dict[int, CamEvents] = {}
     for c in cams:
-        name = info.channels[c]
-        fnd: list[Finding] = []
-        if looks[c].kind in ("flat", "noise"):
-            fnd.append(
-                Finding("warning", "cam-no-signal", f"cam channel {name!r}: {looks[c].reason}")
-            )
-            located[c] = (CamEvents(*(np.empty(0),) * 2, np.empty(0), np.empty(0, int)), 0, 1, fnd)
-            continue
-        e = edges[c]
-        if looks[c].kind == "vr":
-            centre = vr_centre_direction(e)
-            e = e.select(e.direction == centre)
-            leading = centre
+        parts = state[c].events
+        if parts:
+            cols = [np.concatenate(col) for col in zip(*parts, strict=True)]
+            located[c] = CamEvents(cols[0], cols[1].astype(int), cols[2], cols[3].astype(int),
+                                   cols[4])
         else:
-            leading, share = tooth_level_direction(e)
-            if abs(share - 0.5) < 0.05:
-                fnd.append(
-                    Finding(
-                        "info",
-                        "cam-tooth-level",
-                        f"cam {name!r} spends about half the cycle at each level (a half-moon?); "
-                        "its high level is taken as the tooth",
-                    )
-                )
-        ev, dropped = locate(e, timeline)
-        if dropped:
-            fnd.append(
-                Finding(
-                    "info",
-                    "cam-unlocated",
-                    f"{dropped} event(s) on cam {name!r} had no crank angle (before the first "
-                    "reference event, or where crank teeth were missing) and were left out",
-                )
-            )
-        located[c] = (ev, dropped, leading, fnd)
+            located[c] = CamEvents.empty()
+    for c in cams:
+        st = state[c]
+        if st.direction_only is None and st.total_s > 0:
+            share_high = st.high_s / st.total_s
+            st.leading = -1 if share_high > 0.55 else 1
 
+    global_findings: list[Finding] = []
     shift = None
     source_cam = None
     for c in cams:
-        ev = located[c][0]
+        ev = located[c]
         if len(ev.times) and not is_symmetric(ev):
-            shift = choose_phase(ev, located[c][2])
+            shift = choose_phase(ev, state[c].leading)
             source_cam = c
             break
-    if shift is None and any(len(located[c][0].times) for c in cams):
+    if shift is None and any(len(located[c].times) for c in cams):
         global_findings.append(
             Finding(
                 "info",
@@ -469,29 +589,49 @@ def decode_capture(
         )
     cam_results: list[CamResult] = []
     for c in cams:
-        ev, _dropped, leading, fnd = located[c]
+        name = info.channels[c]
+        st = state[c]
+        fnd: list[Finding] = []
+        if looks[c].kind in ("flat", "noise"):
+            fnd.append(
+                Finding("warning", "cam-no-signal", f"cam channel {name!r}: {looks[c].reason}")
+            )
+        elif st.direction_only is None and st.total_s > 0:
+            share_high = st.high_s / st.total_s
+            if abs(share_high - 0.5) < 0.05:
+                fnd.append(
+                    Finding(
+                        "info",
+                        "cam-tooth-level",
+                        f"cam {name!r} spends about half the cycle at each level (a half-moon?); "
+                        "its high level is taken as the tooth",
+                    )
+                )
+        dropped = locator.dropped.get(c, 0)
+        if dropped:
+            fnd.append(
+                Finding(
+                    "info",
+                    "cam-unlocated",
+                    f"{dropped} event(s) on cam {name!r} had no crank angle (before the first "
+                    "reference event, or where crank teeth were missing) and were left out",
+                )
+            )
         sensor = looks[c].kind if looks[c].kind in ("hall", "vr") else "hall"
         cam_results.append(
             build_cam_result(
-                info.channels[c],
-                sensor,  # type: ignore[arg-type]
-                ev,
-                timeline,
-                shift,
-                leading,
-                fnd,
+                name, sensor, located[c], shift, st.leading, fnd,  # type: ignore[arg-type]
                 phase_source=(c == source_cam),
             )
         )
-        choices[f"cam {info.channels[c]}"] = f"{sensor}: {looks[c].reason}"
-    for c in used:
-        if c != crank and c not in cams and looks[c].kind in ("flat", "noise"):
+        choices[f"cam {name}"] = f"{sensor}: {looks[c].reason}"
+    for c in looks:
+        if c != plan.channel and c not in cams and looks[c].kind in ("flat", "noise"):
             global_findings.append(
                 Finding(
                     "info", "channel-unused", f"channel {info.channels[c]!r}: {looks[c].reason}"
                 )
             )
-    crank_result = _crank_result(info, cd, crank_findings)
     return DecodeResult(info, crank_result, tuple(cam_results), tuple(global_findings), choices)
 
 

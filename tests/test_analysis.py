@@ -129,7 +129,7 @@ def test_single_window_cam_fixes_phase_and_angles_are_exact():
     assert dropped == 0
     assert not is_symmetric(ev)
     shift = choose_phase(ev, lead)
-    cam = build_cam_result("cam", "hall", ev, tl, shift, lead, [])
+    cam = build_cam_result("cam", "hall", ev, shift, lead, [])
     assert [(x.flank, x.direction, x.revolution) for x in cam.edges] == [
         ("leading", "rising", 0),
         ("trailing", "falling", 0),
@@ -149,7 +149,7 @@ def test_symmetric_cam_leaves_phase_open():
     e = cam_edges(windows, lambda t: 7200.0 * t, 20.0, 10)
     ev, _ = locate(e, tl)
     assert is_symmetric(ev)
-    cam = build_cam_result("cam", "hall", ev, tl, None, 1, [])
+    cam = build_cam_result("cam", "hall", ev, None, 1, [])
     assert {x.revolution for x in cam.edges} == {None}
     assert sorted(round(x.angle.mean, 6) for x in cam.edges) == [30.0, 55.0, 210.0, 235.0]
 
@@ -166,7 +166,7 @@ def test_phase_convention_puts_more_leading_flanks_in_revolution_zero():
                       lambda t: 12000.0 * t, first_ref, 10)
         ev, _ = locate(e, tl)
         shift = choose_phase(ev, 1)
-        cam = build_cam_result("cam", "hall", ev, tl, shift, 1, [])
+        cam = build_cam_result("cam", "hall", ev, shift, 1, [])
         rev0 = [x for x in cam.edges if x.revolution == 0 and x.flank == "leading"]
         assert len(rev0) == 3
 

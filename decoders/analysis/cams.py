@@ -44,6 +44,8 @@ class CamEvents:
     #: crank angle within the sync run (deg since the run's first reference event)
     crank_angle: np.ndarray
     run: np.ndarray
+    #: crank speed at each event (deg/s)
+    speed: np.ndarray
 
     @property
     def angle(self) -> np.ndarray:
@@ -62,15 +64,27 @@ class CamEvents:
 
     def select(self, mask: np.ndarray) -> CamEvents:
         return CamEvents(
-            self.times[mask], self.direction[mask], self.crank_angle[mask], self.run[mask]
+            self.times[mask],
+            self.direction[mask],
+            self.crank_angle[mask],
+            self.run[mask],
+            self.speed[mask],
         )
+
+    @classmethod
+    def empty(cls) -> CamEvents:
+        e = np.empty(0)
+        return cls(e, e.astype(int), e, e.astype(int), e)
 
 
 def locate(edges: Edges, timeline: CrankTimeline) -> tuple[CamEvents, int]:
     """Crank angles of cam edges; also how many had no trustworthy crank angle."""
     look = timeline.angle_at(edges.times)
     ok = look.valid
-    ev = CamEvents(edges.times[ok], edges.direction[ok].astype(int), look.angle[ok], look.run[ok])
+    ev = CamEvents(
+        edges.times[ok], edges.direction[ok].astype(int), look.angle[ok], look.run[ok],
+        look.speed[ok],
+    )
     return ev, int(np.count_nonzero(~ok))
 
 
@@ -251,7 +265,6 @@ def build_cam_result(
     channel: str,
     sensor: Sensor,
     ev: CamEvents,
-    timeline: CrankTimeline,
     shift: dict[int, int] | None,
     leading: int,
     findings: list[Finding],
@@ -263,7 +276,7 @@ def build_cam_result(
     cyc, full = _cycles(ev, shift or {}, period)
     clusters = _clusters(ev, position, period, cyc, full)
     clusters.sort(key=lambda c: c.centre)
-    speed = timeline.speed_at(ev.times)
+    speed = ev.speed
     lead_centres = sorted(c.centre for c in clusters if c.direction == leading)
 
     edges: list[CamEdge] = []

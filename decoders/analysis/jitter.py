@@ -17,11 +17,11 @@ sigma rather than the smaller residual a local fit leaves.
 from __future__ import annotations
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 from scipy.signal import savgol_coeffs, savgol_filter
 
 from ..result import JitterStats
 from ..wheels.base import ToothTrack
+from .timeline import local_cubic
 
 
 def _rms_pp(x: np.ndarray) -> tuple[float, float]:
@@ -82,50 +82,164 @@ def _window(n_available: int, half: int) -> int:
     return w
 
 
-def crank_jitter(track: ToothTrack, half_window: int | None = None) -> JitterStats | None:
-    """Jitter of the crank tooth events of every sync run.
+class _Moments:
+    """Running rms and range of a series (seconds and degrees side by side).
 
-    Per run, the tooth times are put on the wheel's regular angle grid (positions without an
-    event -- the gap, missing teeth -- filled by interpolation), a local cubic over
-    ``2 * half_window + 1`` positions gives the ideal times, and the TIE of each seen tooth is
-    its time minus the ideal one.
+    Sums are taken over fixed groups of values, in order, so the figures come out bit for bit the
+    same however the series was handed in.
     """
-    pitch = track.pitch_deg
-    positions = round(360.0 / pitch)
-    half = half_window if half_window is not None else max(3, round(positions / 12))
-    ties, speeds, cons = [], [], []
-    scale = []
-    for idx in track.runs:
-        if len(idx) < 8:
-            continue
-        t = track.times[idx]
-        grid_i = np.rint(track.angles[idx] / pitch).astype(int)
-        grid_i -= grid_i[0]
-        full = np.arange(grid_i[-1] + 1)
-        # positions with no event (the gap, missing teeth) are filled smoothly, so the fill
-        # does not look like jitter to the local fit
-        tf = CubicSpline(grid_i, t)(full)
-        w = _window(len(full), half)
-        if w < 5:
-            continue
-        ideal_full = savgol_filter(tf, w, 3)
-        deriv = savgol_filter(tf, w, 3, deriv=1)  # seconds per pitch
-        ideal = ideal_full[grid_i]
-        ties.append(t - ideal)
-        speeds.append(pitch / deriv[grid_i])
-        c = np.concatenate(([False], np.diff(grid_i) == 1))
-        cons.append(c)
-        h0 = savgol_coeffs(w, 3)[w // 2]
-        scale.append(1.0 / np.sqrt(1.0 - h0))
-    if not ties:
-        return None
-    return jitter_from_tie(
-        np.concatenate(ties),
-        np.concatenate(speeds),
-        np.concatenate(cons),
-        rms_scale=float(np.mean(scale)),
-        detrend=f"local cubic over {2 * half + 1} tooth positions",
-    )
+
+    GROUP = 1024
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.sq_s = self.sq_d = 0.0
+        self.lo_s = self.lo_d = np.inf
+        self.hi_s = self.hi_d = -np.inf
+        self._s = np.empty(0)
+        self._d = np.empty(0)
+
+    def add(self, s: np.ndarray, d: np.ndarray) -> None:
+        ok = np.isfinite(s) & np.isfinite(d)
+        s, d = s[ok], d[ok]
+        if len(s) == 0:
+            return
+        self.n += len(s)
+        self.lo_s, self.hi_s = min(self.lo_s, float(s.min())), max(self.hi_s, float(s.max()))
+        self.lo_d, self.hi_d = min(self.lo_d, float(d.min())), max(self.hi_d, float(d.max()))
+        self._s = np.concatenate((self._s, s))
+        self._d = np.concatenate((self._d, d))
+        while len(self._s) >= self.GROUP:
+            self._commit(self.GROUP)
+
+    def _commit(self, k: int) -> None:
+        a, b = self._s[:k], self._d[:k]
+        self.sq_s += float(np.sum(a * a))
+        self.sq_d += float(np.sum(b * b))
+        self._s, self._d = self._s[k:], self._d[k:]
+
+    def figures(self, scale: float) -> tuple[float, float, float, float]:
+        if self.n == 0:
+            nan = float("nan")
+            return nan, nan, nan, nan
+        sq_s, sq_d = self.sq_s, self.sq_d
+        if len(self._s):
+            sq_s += float(np.sum(self._s * self._s))
+            sq_d += float(np.sum(self._d * self._d))
+        return (
+            float(np.sqrt(sq_s / self.n)) * scale,
+            self.hi_s - self.lo_s,
+            float(np.sqrt(sq_d / self.n)) * scale,
+            self.hi_d - self.lo_d,
+        )
+
+
+class CrankJitter:
+    """Jitter of crank tooth events, gathered while the teeth stream in.
+
+    Per sync run the tooth times are put on the wheel's regular angle grid (positions without an
+    event -- the gap, missing teeth -- filled by the local cubic through the neighbouring teeth),
+    a local cubic over ``2 * half_window + 1`` positions (Savitzky-Golay) gives each position's
+    ideal time and speed, and the TIE of each seen tooth with a whole window around it is its time
+    minus the ideal one. Only a few dozen teeth are held at any time.
+    """
+
+    def __init__(self, pitch_deg: float, half_window: int | None = None) -> None:
+        positions = round(360.0 / pitch_deg)
+        self.pitch = float(pitch_deg)
+        self.half = half_window if half_window is not None else max(3, round(positions / 12))
+        w = 2 * self.half + 1
+        self._c = savgol_coeffs(w, 3, use="dot")
+        self._d = savgol_coeffs(w, 3, deriv=1, use="dot")
+        self._scale = 1.0 / float(np.sqrt(1.0 - self._c[self.half]))
+        self._run = -1
+        self._g = np.empty(0, dtype=int)  # grid position of each buffered tooth
+        self._t = np.empty(0)
+        self._done = -(10**9)  # last grid position whose TIE was taken
+        self._last: tuple[int, float, float] | None = None  # (grid, tie, period jitter)
+        self._tie, self._per, self._c2c = _Moments(), _Moments(), _Moments()
+
+    def add(self, track: ToothTrack) -> None:
+        """Take newly decided teeth (in order)."""
+        if len(track) == 0:
+            return
+        cuts = np.flatnonzero(np.diff(track.run)) + 1
+        for idx in np.split(np.arange(len(track)), cuts):
+            r = int(track.run[idx[0]])
+            if r != self._run:
+                self.flush()
+                self._run = r
+                self._g = np.empty(0, dtype=int)
+                self._t = np.empty(0)
+                self._done = -(10**9)
+                self._last = None
+            g = np.rint(track.angles[idx] / self.pitch).astype(int)
+            self._g = np.concatenate((self._g, g))
+            self._t = np.concatenate((self._t, track.times[idx]))
+            self._take(final=False)
+
+    def flush(self) -> None:
+        """The current run has ended: take the teeth at its end too."""
+        self._take(final=True)
+
+    def _take(self, final: bool) -> None:
+        h = self.half
+        g, t = self._g, self._t
+        if len(g) < 4:
+            return
+        full = np.arange(g[0], g[-1] + 1)
+        k = np.clip(np.searchsorted(g, full, side="right") - 1, 0, len(g) - 2)
+        tf, _ = local_cubic(full.astype(float), g.astype(float), t, k)
+        if len(full) < 2 * h + 1:
+            return
+        ideal = np.correlate(tf, self._c, "valid")  # positions full[h : len - h]
+        deriv = np.correlate(tf, self._d, "valid")
+        centre = full[h : len(full) - h]
+        # until the run ends, a window must stay clear of the last two teeth, whose fill can
+        # still change as teeth arrive
+        last_ok = centre[-1] if final else g[-2] - h - 1
+        seen = np.isin(g, centre) & (g > self._done) & (g <= last_ok)
+        if np.any(seen):
+            j = g[seen] - centre[0]
+            tie = t[seen] - ideal[j]
+            speed = self.pitch / deriv[j]
+            gs = g[seen]
+            prev_g = np.concatenate(([self._last[0] if self._last else -(10**9)], gs[:-1]))
+            prev_tie = np.concatenate(([self._last[1] if self._last else np.nan], tie[:-1]))
+            cons = gs - prev_g == 1
+            per = np.where(cons, tie - prev_tie, np.nan)
+            prev_per = np.concatenate(([self._last[2] if self._last else np.nan], per[:-1]))
+            c2c = np.where(cons, per - prev_per, np.nan)
+            self._tie.add(tie, tie * speed)
+            self._per.add(per, per * speed)
+            self._c2c.add(c2c, c2c * speed)
+            self._last = (int(gs[-1]), float(tie[-1]), float(per[-1]))
+            self._done = int(gs[-1])
+        # keep the teeth the next window's fill needs: from the tooth before the last one at or
+        # before the next window's first position
+        first_needed = max(self._done, int(g[0]) + h - 1) + 1 - h
+        i0 = int(np.searchsorted(g, first_needed, side="right")) - 2
+        if i0 > 0:
+            self._g, self._t = g[i0:], t[i0:]
+
+    def result(self) -> JitterStats | None:
+        if self._tie.n == 0:
+            return None
+        tr, tp, tdr, tdp = self._tie.figures(self._scale)
+        pr, pp, pdr, pdp = self._per.figures(self._scale)
+        cr, cp, cdr, cdp = self._c2c.figures(self._scale)
+        return JitterStats(
+            self._tie.n, tr, tp, pr, pp, cr, cp, tdr, tdp, pdr, pdp, cdr, cdp,
+            detrend=f"local cubic over {2 * self.half + 1} tooth positions",
+        )
+
+
+def crank_jitter(track: ToothTrack, half_window: int | None = None) -> JitterStats | None:
+    """Jitter of the crank tooth events of a whole track (see :class:`CrankJitter`)."""
+    acc = CrankJitter(track.pitch_deg, half_window)
+    acc.add(track)
+    acc.flush()
+    return acc.result()
 
 
 def edge_jitter(

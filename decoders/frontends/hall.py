@@ -145,6 +145,11 @@ class HallFrontEnd:
         self._buf_start += len(buf) - keep
         return out
 
+    @property
+    def settled_s(self) -> float:
+        """No edge earlier than this time (s) will come out of later calls."""
+        return self._buf_start / self.sample_rate
+
     def finish(self) -> Edges:
         out = self._scan(self._buf, final=True) if len(self._buf) else Edges.empty()
         self._buf = np.empty(0)

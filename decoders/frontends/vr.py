@@ -113,6 +113,12 @@ class VrFrontEnd:
         self._tail_start += len(buf) - keep
         return out
 
+    @property
+    def settled_s(self) -> float:
+        """No edge earlier than this time (s) will come out of later calls."""
+        pending = self._next_k if self._open_start is None else min(self._open_start, self._next_k)
+        return pending / self.sample_rate
+
     def finish(self) -> Edges:
         times: list[float] = []
         dirs: list[int] = []

@@ -44,6 +44,29 @@ class ToothTrack:
     def __len__(self) -> int:
         return len(self.times)
 
+    @classmethod
+    def concat(cls, parts: list[ToothTrack], pitch_deg: float) -> ToothTrack:
+        """Pieces from a streaming tracker, in order, as one track. Counters (extra, missing,
+        sync losses) are running totals, so the last piece's are kept."""
+        parts = list(parts)
+        if not parts:
+            e = np.empty(0)
+            return cls(e, e, e.astype(int), e.astype(int), e.astype(int), e, pitch_deg)
+        last = parts[-1]
+        return cls(
+            times=np.concatenate([p.times for p in parts]),
+            angles=np.concatenate([p.angles for p in parts]),
+            run=np.concatenate([p.run for p in parts]).astype(int),
+            tooth=np.concatenate([p.tooth for p in parts]).astype(int),
+            pitches=np.concatenate([p.pitches for p in parts]).astype(int),
+            reference_times=np.concatenate([p.reference_times for p in parts]),
+            pitch_deg=pitch_deg,
+            extra=last.extra,
+            missing=last.missing,
+            sync_losses=last.sync_losses,
+            findings=tuple(f for p in parts for f in p.findings),
+        )
+
     @property
     def runs(self) -> list[np.ndarray]:
         """Index arrays of the teeth of each sync run."""

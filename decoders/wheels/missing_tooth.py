@@ -255,85 +255,137 @@ def decode_teeth(times: np.ndarray, spec: MissingToothSpec) -> ToothTrack:
     >>> len(track.reference_times), track.sync_losses, track.angles[:3].tolist()
     (2, 0, [0.0, 10.0, 20.0])
     """
-    times = np.asarray(times, dtype=float)
-    n = len(times)
-    K = spec.teeth
-    out_t: list[float] = []
-    out_a: list[float] = []
-    out_run: list[int] = []
-    out_tooth: list[int] = []
-    out_pitch: list[int] = []
-    refs: list[float] = []
-    findings: list[Finding] = []
-    extra = missing = losses = 0
-    run = -1
+    tracker = ToothTracker(spec)
+    return ToothTrack.concat([tracker.feed(times), tracker.finish()], spec.pitch_deg)
 
-    cand = gap_candidates(times)
-    cand_set = np.zeros(max(n - 1, 0), dtype=bool)
-    cand_set[cand] = True
-    ratios = gap_ratios(times)
 
-    i = 0
-    synced = False
-    tooth = 0
-    angle = 0.0
-    p_last = p_prev = 0.0
-    while i < n - 1:
-        if not synced:
-            # next interval that looks like this wheel's gap
-            nxt = cand[cand >= i]
-            nxt = nxt[np.abs(ratios[nxt] / (spec.missing + 1) - 1.0) < 0.3]
-            if len(nxt) == 0:
-                break
-            g = int(nxt[0])
-            i = g + 1  # tooth 1
-            run += 1
-            synced = True
-            tooth = 1
-            angle = 0.0
-            T = np.diff(times[g - 1 : g + 3]) if g + 3 <= n else np.diff(times[g - 1 : g + 2])
-            p_last = p_prev = float(0.5 * (T[0] + T[2])) if len(T) >= 3 else float(T[0])
-            out_t.append(float(times[i]))
-            out_a.append(angle)
-            out_run.append(run)
-            out_tooth.append(tooth)
-            out_pitch.append(0)
-            refs.append(float(times[i]))
-            continue
+class ToothTracker:
+    """Follows an N-M wheel through event times that arrive in pieces.
 
-        # fast path: a whole clean revolution from tooth 1
-        if tooth == 1 and i + K < n:
-            steps = np.ones(K)
-            steps[-1] = spec.missing + 1
-            T = np.diff(times[i : i + K + 1])
-            q = T / steps
-            rel = q[1:] / q[:-1]
-            if abs(math.log(q[0] / p_last)) < 0.25 and np.all(np.abs(np.log(rel)) < 0.25):
-                cum = np.cumsum(steps) * spec.pitch_deg
-                for k in range(K):
-                    tooth_k = k + 2 if k < K - 1 else 1
-                    ang = angle + cum[k]
-                    out_t.append(float(times[i + k + 1]))
-                    out_a.append(float(ang))
-                    out_run.append(run)
-                    out_tooth.append(tooth_k)
-                    out_pitch.append(int(steps[k]))
-                refs.append(float(times[i + K]))
-                angle += 360.0
-                p_prev, p_last = float(q[-2]) if K > 1 else float(q[-1]), float(q[-1])
-                i += K
+    ``feed(times)`` takes the next events (in time order) and returns the teeth it could decide;
+    ``finish()`` decides the rest. A decision waits until the events it looks ahead to have
+    arrived, so the teeth do not depend on how the events were cut into pieces.
+
+    >>> w = MissingToothSpec(36, 1)
+    >>> t = np.array([r * 360 + k * 10.0 for r in range(4) for k in range(35)]) / 9000.0
+    >>> tr = ToothTracker(w)
+    >>> parts = [tr.feed(t[i : i + 17]) for i in range(0, len(t), 17)] + [tr.finish()]
+    >>> whole = decode_teeth(t, w)
+    >>> bool(np.array_equal(ToothTrack.concat(parts, w.pitch_deg).times, whole.times))
+    True
+    """
+
+    def __init__(self, spec: MissingToothSpec) -> None:
+        self.spec = spec
+        self._t = np.empty(0)  # events not yet behind us
+        self._i = 0  # local index: the last accepted tooth (synced) or where to search (not)
+        self._synced = False
+        self._tooth = 0
+        self._angle = 0.0
+        self._p_last = 0.0
+        self._p_prev = 0.0
+        self._run = -1
+        self._extra = self._missing = self._losses = 0
+
+    # -- public ------------------------------------------------------------------------------
+
+    def feed(self, times: np.ndarray) -> ToothTrack:
+        times = np.asarray(times, dtype=float)
+        if len(times):
+            self._t = np.concatenate((self._t, times)) if len(self._t) else times.copy()
+        return self._run_until(final=False)
+
+    def finish(self) -> ToothTrack:
+        return self._run_until(final=True)
+
+    # -- internals -------------------------------------------------------------------------------
+
+    def _run_until(self, final: bool) -> ToothTrack:
+        spec = self.spec
+        K = spec.teeth
+        t = self._t
+        n = len(t)
+        out = _Out()
+        i = self._i
+        while i < n - 1:
+            if not self._synced:
+                # a gap interval g needs t[g - 1] .. t[g + 2] to be judged
+                lo = max(i, 1)
+                hi = n - 3
+                if hi < lo:
+                    break
+                seg = t[lo - 1 : hi + 3]
+                cand = gap_candidates(seg) + lo - 1
+                cand = cand[(cand >= lo) & (cand <= hi)]
+                if len(cand):
+                    r = gap_ratios(seg)[cand - (lo - 1)]
+                    cand = cand[np.abs(r / (spec.missing + 1) - 1.0) < 0.3]
+                if len(cand) == 0:
+                    i = max(i, hi + 1)
+                    break
+                g = int(cand[0])
+                i = g + 1  # tooth 1
+                self._run += 1
+                self._synced = True
+                self._tooth = 1
+                self._angle = 0.0
+                T = np.diff(t[g - 1 : g + 3])
+                self._p_last = self._p_prev = float(0.5 * (T[0] + T[2]))
+                out.tooth(t[i], 0.0, self._run, 1, 0)
+                out.refs.append(float(t[i]))
                 continue
 
-        ratio = min(max(p_last / p_prev, 0.8), 1.25) if p_prev > 0 else 1.0
-        p_pred = p_last * ratio
-        best = None  # (cost, edges consumed, teeth advanced)
+            # fast path: a whole clean revolution from tooth 1
+            if self._tooth == 1:
+                if i + K >= n and not final:
+                    break
+                if i + K < n:
+                    steps = np.ones(K)
+                    steps[-1] = spec.missing + 1
+                    T = np.diff(t[i : i + K + 1])
+                    q = T / steps
+                    rel = q[1:] / q[:-1]
+                    if abs(math.log(q[0] / self._p_last)) < 0.25 and np.all(
+                        np.abs(np.log(rel)) < 0.25
+                    ):
+                        cum = np.cumsum(steps) * spec.pitch_deg
+                        teeth = np.arange(2, K + 2)
+                        teeth[-1] = 1
+                        out.teeth(t[i + 1 : i + K + 1], self._angle + cum, self._run, teeth, steps)
+                        out.refs.append(float(t[i + K]))
+                        self._angle += 360.0
+                        self._p_prev = float(q[-2]) if K > 1 else float(q[-1])
+                        self._p_last = float(q[-1])
+                        i += K
+                        continue
+
+            if i + 2 >= n and not final:
+                break
+            if not self._step(t, i, n, out):
+                i += 1
+                continue
+            i = out.last_i
+
+        # keep what later decisions may look back to (a gap is judged with t[g - 1])
+        drop = max(0, min(i, n) - 2)
+        self._t = t[drop:]
+        self._i = i - drop
+        return out.track(spec.pitch_deg, self)
+
+    def _step(self, t: np.ndarray, i: int, n: int, out: _Out) -> bool:
+        """One tooth-by-tooth decision from the tooth at ``i``; False when sync is lost."""
+        spec = self.spec
+        K = spec.teeth
+        ratio = min(max(self._p_last / self._p_prev, 0.8), 1.25) if self._p_prev > 0 else 1.0
+        p_pred = self._p_last * ratio
+        best = None  # (cost, err, skip, adv, pitches, interval)
         for skip in (0, 1):
             if i + 1 + skip >= n:
                 break
-            T = times[i + 1 + skip] - times[i]
+            T = t[i + 1 + skip] - t[i]
             q = T / p_pred
             for adv in range(1, K + 1):
-                c = spec.span(tooth, adv)
+                c = spec.span(self._tooth, adv)
                 if c > q * 1.6 + 1:
                     break
                 if adv > 1 and abs(q - c) > 0.3:
@@ -343,65 +395,83 @@ def decode_teeth(times: np.ndarray, spec: MissingToothSpec) -> ToothTrack:
                 if best is None or cost < best[0]:
                     best = (cost, err, skip, adv, c, T)
         if best is None or best[1] > ACCEPT_LOG:
-            synced = False
-            losses += 1
-            findings.append(
+            self._synced = False
+            self._losses += 1
+            out.findings.append(
                 Finding(
                     "warning",
                     "sync-lost",
-                    f"crank sync lost after tooth {tooth} at {times[i]:.4f} s: the next interval "
-                    f"does not fit the {spec.name} wheel; found again at the next gap",
-                    float(times[i]),
+                    f"crank sync lost after tooth {self._tooth} at {t[i]:.4f} s: the next "
+                    f"interval does not fit the {spec.name} wheel; found again at the next gap",
+                    float(t[i]),
                 )
             )
-            i += 1
-            continue
+            return False
         _, _, skip, adv, c, T = best
         if skip:
-            extra += skip
-            findings.append(
+            self._extra += skip
+            out.findings.append(
                 Finding(
                     "info",
                     "extra-edge",
-                    f"an edge at {times[i + 1]:.4f} s between crank teeth is not a tooth "
+                    f"an edge at {t[i + 1]:.4f} s between crank teeth is not a tooth "
                     "(runt pulse, spike or noise) and was ignored",
-                    float(times[i + 1]),
+                    float(t[i + 1]),
                 )
             )
         if adv > 1:
-            missing += adv - 1
-            findings.append(
+            self._missing += adv - 1
+            out.findings.append(
                 Finding(
                     "warning",
                     "missing-teeth",
-                    f"{adv - 1} crank tooth event(s) not seen after tooth {tooth} at "
-                    f"{times[i]:.4f} s (dropout or damaged tooth); counted through",
-                    float(times[i]),
+                    f"{adv - 1} crank tooth event(s) not seen after tooth {self._tooth} at "
+                    f"{t[i]:.4f} s (dropout or damaged tooth); counted through",
+                    float(t[i]),
                 )
             )
         i += 1 + skip
-        for _ in range(adv):
-            tooth = tooth % K + 1
-        angle += c * spec.pitch_deg
-        p_prev, p_last = p_last, float(T / c)
-        out_t.append(float(times[i]))
-        out_a.append(float(angle))
-        out_run.append(run)
-        out_tooth.append(tooth)
-        out_pitch.append(int(c))
-        if tooth == 1:
-            refs.append(float(times[i]))
+        self._tooth = (self._tooth - 1 + adv) % K + 1
+        self._angle += c * spec.pitch_deg
+        self._p_prev, self._p_last = self._p_last, float(T / c)
+        out.tooth(t[i], self._angle, self._run, self._tooth, c)
+        if self._tooth == 1:
+            out.refs.append(float(t[i]))
+        out.last_i = i
+        return True
 
-    return ToothTrack(
-        times=np.asarray(out_t),
-        angles=np.asarray(out_a),
-        run=np.asarray(out_run, dtype=int),
-        tooth=np.asarray(out_tooth, dtype=int),
-        pitches=np.asarray(out_pitch, dtype=int),
-        reference_times=np.asarray(refs),
-        pitch_deg=spec.pitch_deg,
-        extra=extra,
-        missing=missing,
-        sync_losses=losses,
-        findings=tuple(findings),
-    )
+
+class _Out:
+    """Teeth decided in one call, gathered as arrays."""
+
+    def __init__(self) -> None:
+        self.parts: list[tuple[np.ndarray, ...]] = []
+        self.refs: list[float] = []
+        self.findings: list[Finding] = []
+        self.last_i = 0
+
+    def tooth(self, t: float, angle: float, run: int, tooth: int, pitches: float) -> None:
+        self.parts.append(
+            (np.array([t]), np.array([angle]), np.array([run]), np.array([tooth]),
+             np.array([pitches]))
+        )
+
+    def teeth(self, t, angle, run, tooth, pitches) -> None:
+        self.parts.append((t, angle, np.full(len(t), run), tooth, pitches))
+
+    def track(self, pitch_deg: float, tracker: ToothTracker) -> ToothTrack:
+        cols = list(zip(*self.parts, strict=True)) if self.parts else [()] * 5
+        cat = [np.concatenate(c) if c else np.empty(0) for c in cols]
+        return ToothTrack(
+            times=cat[0].astype(float),
+            angles=cat[1].astype(float),
+            run=cat[2].astype(int),
+            tooth=cat[3].astype(int),
+            pitches=cat[4].astype(int),
+            reference_times=np.asarray(self.refs, dtype=float),
+            pitch_deg=pitch_deg,
+            extra=tracker._extra,
+            missing=tracker._missing,
+            sync_losses=tracker._losses,
+            findings=tuple(self.findings),
+        )
