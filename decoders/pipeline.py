@@ -62,8 +62,8 @@ PROBE_MAX_SAMPLES = 1 << 21
 # common practice, no source: below about 8 samples per tooth the flank/crossing interpolation
 # and the gap ratios both degrade quickly
 MIN_SAMPLES_PER_TOOTH = 8.0
-#: points in the engine speed trace kept for plots
-TRACE_POINTS = 2000
+#: most points kept in the per-tooth engine speed trace (longer captures are thinned by time)
+TRACE_POINTS = 50_000
 
 
 def read_probe(source: CaptureSource, n: int, block_size: int) -> np.ndarray:
