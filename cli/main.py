@@ -60,7 +60,19 @@ examples:
   toothcomb decode run.wav --json - > run.json
       the result as JSON on stdout (the report goes to stderr)
   toothcomb decode run.h5 --json run.json --plot run.png --quiet
-      write the JSON and a plot, print nothing"""
+      write the JSON and a plot, print nothing
+  toothcomb decode after-job.flac --against engine.toml
+      hold every cam edge against an engine profile (or a known-good decode's JSON):
+      deviation, teeth off, verdict; exit code 1 when a mark is out of tolerance"""
+
+LEARN_EXAMPLES = """\
+examples:
+  toothcomb learn known-good.flac engine.toml --sprocket-teeth 42 --drive belt
+      decode a capture of an engine known to be in time and write its profile
+  toothcomb learn known-good.flac reference.json
+      keep the decode itself as the reference instead
+  toothcomb decode after-job.flac --against engine.toml
+      later: compare a new capture of the same engine with it"""
 
 CH_HELP = "a channel name or its 0-based index"
 
@@ -87,6 +99,40 @@ def _positive_int(text: str) -> int:
         ) from None
     if value <= 0:
         raise argparse.ArgumentTypeError(f"{text!r} must be a whole number above 0")
+    return value
+
+
+def _tolerance(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an angle; give e.g. 3") from None
+    if not 0 < value <= 90:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} deg CA is not a usable tolerance; give a positive angle up to 90"
+        )
+    return value
+
+
+def _sprocket_teeth(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a tooth count; give the cam sprocket's teeth, e.g. 42"
+        ) from None
+    if not 2 <= value <= 400:
+        raise argparse.ArgumentTypeError(f"{text!r} teeth is outside 2..400; count the sprocket")
+    return value
+
+
+def _angle(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an angle; give e.g. 276") from None
+    if not -360 < value < 360:
+        raise argparse.ArgumentTypeError(f"{text!r} deg CA is outside -360..360")
     return value
 
 
@@ -211,6 +257,27 @@ def build_parser() -> argparse.ArgumentParser:
         default=DEFAULT_BLOCK_SIZE,
         help="samples read per block; the result does not depend on it (default: %(default)s)",
     )
+    v = p.add_argument_group("timing verdict")
+    v.add_argument(
+        "--against",
+        metavar="REF",
+        help="compare with REF: an engine profile (.toml), the --json output of a decode of a "
+        "known-good capture of the same engine, or a shipped profile's name "
+        "(see 'toothcomb profiles')",
+    )
+    v.add_argument(
+        "--sprocket-teeth",
+        type=_sprocket_teeth,
+        metavar="T",
+        help="teeth on the cam sprocket (one drive tooth = 720/T deg CA); overrides the profile",
+    )
+    v.add_argument(
+        "--tolerance",
+        type=_tolerance,
+        metavar="DEG",
+        help="largest deviation still in time, deg CA; overrides the profile (default: the "
+        "profile's, else 3)",
+    )
     _add_output_options(p, plot=True)
     p.set_defaults(run=run_decode)
 
@@ -284,6 +351,75 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, metavar="N", help="change the noise seed")
     _add_console_options(p.add_argument_group("output"))
     p.set_defaults(run=run_simulate)
+
+    # learn
+    p = sub.add_parser(
+        "learn",
+        help="decode a known-good capture and keep it as an engine profile or reference",
+        description=_para(
+            "Decode a capture of an engine known to be in time and write what it shows as an "
+            "engine profile (OUT ending in .toml) or as the decode's JSON (OUT ending in .json). "
+            "A later capture of the same engine is compared with it by 'toothcomb decode "
+            "CAPTURE --against OUT'. Each expected edge keeps its own uncertainty."
+        ),
+        epilog=LEARN_EXAMPLES + "\n\n" + EXIT_CODES_HELP,
+        formatter_class=_Formatter,
+    )
+    p.add_argument("capture", metavar="CAPTURE", help="capture file (.csv, .wav, .flac, .h5)")
+    p.add_argument("out", metavar="OUT", help="profile to write (.toml) or reference (.json)")
+    g = p.add_argument_group("what the capture holds (worked out when not given)")
+    g.add_argument("--crank", metavar="CH", help=f"crank sensor channel: {CH_HELP}")
+    g.add_argument(
+        "--cam",
+        metavar="CH",
+        action="append",
+        default=[],
+        help=f"cam sensor channel: {CH_HELP}; repeat for each cam",
+    )
+    g.add_argument("--wheel", metavar="N-M", help="crank wheel in trade notation, e.g. 60-2")
+    g.add_argument("--crank-sensor", choices=("hall", "vr"), help="crank sensor kind")
+    g.add_argument("--cam-sensor", choices=("hall", "vr"), help="cam sensor kind (every cam)")
+    g.add_argument(
+        "--sample-rate",
+        type=_positive_float,
+        metavar="HZ",
+        help="sample rate for files that carry none",
+    )
+    e = p.add_argument_group("what the profile also records (.toml only)")
+    e.add_argument("--name", metavar="NAME", help="the profile's name (default: from OUT)")
+    e.add_argument("--description", metavar="TEXT", help="one line on the engine and set-up")
+    e.add_argument(
+        "--sprocket-teeth", type=_sprocket_teeth, metavar="T", help="teeth on the cam sprocket"
+    )
+    e.add_argument("--drive", choices=("belt", "chain", "gear"), help="what turns the cams")
+    e.add_argument(
+        "--tolerance", type=_tolerance, metavar="DEG", help="largest deviation still in time"
+    )
+    e.add_argument(
+        "--tdc-after-reference",
+        type=_angle,
+        metavar="DEG",
+        help="angle from the crank reference event to TDC of cylinder 1 (reports then give "
+        "BTDC/ATDC)",
+    )
+    e.add_argument("--cylinders", type=_positive_int, metavar="N", help="number of cylinders")
+    _add_console_options(p.add_argument_group("output"))
+    p.set_defaults(run=run_learn)
+
+    # profiles
+    p = sub.add_parser(
+        "profiles",
+        help="list the engine profiles that ship with toothcomb, or print one",
+        description=_para(
+            "List the invented demo engine profiles that ship with toothcomb. With NAME, print "
+            "that profile's TOML, to start a profile of your own from it."
+        ),
+        epilog="examples:\n  toothcomb profiles\n  toothcomb profiles demo-belt-60-2-vr > "
+        "mine.toml\n\n" + EXIT_CODES_HELP,
+        formatter_class=_Formatter,
+    )
+    p.add_argument("name", metavar="NAME", nargs="?", help="print this profile's TOML")
+    p.set_defaults(run=run_profiles)
 
     # version
     p = sub.add_parser(
@@ -433,10 +569,30 @@ def _prepare_outputs(args: argparse.Namespace) -> None:
         _check_output_target(args.plot, "plot file")
 
 
+def _reference(args: argparse.Namespace) -> Any:
+    """The profile ``--against`` names, read and checked before the decode starts."""
+    against = getattr(args, "against", None)
+    if against is None:
+        for flag, value in (
+            ("--sprocket-teeth", getattr(args, "sprocket_teeth", None)),
+            ("--tolerance", getattr(args, "tolerance", None)),
+        ):
+            if value is not None:
+                raise UsageError(
+                    f"{flag} {value} needs something to compare with; add --against REF (an "
+                    "engine profile, or the JSON of a known-good decode)"
+                )
+        return None
+    from toothcomb.decoders.profiles import load_reference
+
+    return load_reference(against)
+
+
 def run_decode(args: argparse.Namespace, streams: Streams) -> int:
-    """``toothcomb decode``: decode a capture and report."""
+    """``toothcomb decode``: decode a capture, compare it when asked, and report."""
     _prepare_outputs(args)
     _check_capture(args.capture)
+    reference = _reference(args)
     options = DecodeOptions(
         crank=args.crank,
         cams=tuple(args.cam),
@@ -447,7 +603,103 @@ def run_decode(args: argparse.Namespace, streams: Streams) -> int:
         block_size=args.block_size,
     )
     result = _decode_with_progress(args.capture, options, args, streams)
+    if reference is not None:
+        from toothcomb.decoders.verdict import compare
+
+        result = compare(
+            result,
+            reference,
+            sprocket_teeth=getattr(args, "sprocket_teeth", None),
+            tolerance_deg=getattr(args, "tolerance", None),
+        )
     return _finish_decode(result, args, streams)
+
+
+def run_learn(args: argparse.Namespace, streams: Streams) -> int:
+    """``toothcomb learn``: decode a known-good capture and write it as a profile or reference."""
+    from toothcomb.decoders.profiles import dumps_profile, learn_profile
+
+    from .output import dumps_json, write_atomic
+    from .report import PHASE_MOVED_DEG, edge_range, render_decode
+
+    suffix = Path(args.out).suffix.lower()
+    if suffix not in (".toml", ".json"):
+        raise UsageError(
+            f"output {args.out!r} ends in {suffix or 'nothing'!r}; name it .toml for an engine "
+            "profile or .json for a reference decode"
+        )
+    extras = {
+        "--name": args.name,
+        "--description": args.description,
+        "--sprocket-teeth": args.sprocket_teeth,
+        "--drive": args.drive,
+        "--tolerance": args.tolerance,
+        "--tdc-after-reference": args.tdc_after_reference,
+        "--cylinders": args.cylinders,
+    }
+    given = [k for k, v in extras.items() if v is not None]
+    if suffix == ".json" and given:
+        raise UsageError(
+            f"{given[0]} is recorded only in a profile; name the output .toml instead of .json"
+        )
+    _check_output_target(args.out, "output file")
+    _check_capture(args.capture)
+    options = DecodeOptions(
+        crank=args.crank,
+        cams=tuple(args.cam),
+        wheel=args.wheel,
+        crank_sensor=args.crank_sensor,
+        cam_sensor=args.cam_sensor,
+        sample_rate=args.sample_rate,
+    )
+    result = _decode_with_progress(args.capture, options, args, streams)
+    edges = sum(len(c.edges) for c in result.cams)
+    if suffix == ".toml":
+        profile = learn_profile(
+            result,
+            name=args.name or Path(args.out).stem,
+            description=args.description or "",
+            sprocket_teeth=args.sprocket_teeth,
+            drive=args.drive,
+            tolerance_deg=args.tolerance,
+            tdc_after_reference_deg=args.tdc_after_reference,
+            cylinders=args.cylinders,
+        )
+        write_atomic(args.out, dumps_profile(profile), what="profile")
+        what = f"profile {profile.name!r} written to {args.out}"
+    else:
+        from toothcomb.decoders.profiles import profile_from_decode_json
+
+        profile_from_decode_json(result.to_json(), args.capture)  # refuses a decode without cams
+        write_atomic(args.out, dumps_json(result.to_json()), what="reference")
+        what = f"reference decode written to {args.out}"
+    notes = [f"{what} ({len(result.cams)} cams, {edges} edges)"]
+    moved = [
+        f"{c.channel} {e.flank}" for c in result.cams for e in c.edges
+        if edge_range(e) > PHASE_MOVED_DEG
+    ]
+    if moved:
+        notes.append(
+            f"careful: {', '.join(moved)} moved by more than {PHASE_MOVED_DEG:g} deg CA during "
+            "the capture; learn from a capture with every phaser parked (steady idle)"
+        )
+    console = _report_console(args, streams)
+    if console is not None:
+        render_decode(result, console, notes)
+    return EXIT_OK
+
+
+def run_profiles(args: argparse.Namespace, streams: Streams) -> int:
+    """``toothcomb profiles``: list the shipped engine profiles, or print one."""
+    from toothcomb.decoders.profiles import dumps_profile, shipped_profile, shipped_profiles
+
+    if args.name:
+        streams.out.write(dumps_profile(shipped_profile(args.name)))
+        return EXIT_OK
+    names = shipped_profiles()
+    wide = max((len(n) for n in names), default=0)
+    streams.out.write("".join(f"{n:<{wide}}  {d}\n" for n, d in sorted(names.items())))
+    return EXIT_OK
 
 
 def run_describe(args: argparse.Namespace, streams: Streams) -> int:

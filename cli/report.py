@@ -129,6 +129,15 @@ def _get(obj: Any, key: str, default: Any = None) -> Any:
     return getattr(obj, key, default)
 
 
+def _cmp(edge: Any, key: str, default: Any = None) -> Any:
+    """A comparison field of a cam edge: from its ``comparison`` when it has one (see
+    ``toothcomb.decoders.verdict``), else from the edge itself (plain dicts, other results)."""
+    comparison = _get(edge, "comparison")
+    if comparison is not None:
+        return _get(comparison, key, default)
+    return _get(edge, key, default)
+
+
 def edge_label(edge: CamEdge) -> str:
     """Short name of a cam edge: its window and flank.
 
@@ -294,14 +303,15 @@ def render_crank(crank: CrankResult, console: Console) -> None:
 
 
 def _status_text(edge: CamEdge) -> Text:
-    status = _get(edge, "status")
+    status = _cmp(edge, "status")
     if status is None:
         return Text("")
     if status == IN_TIME:
         return Text("in time", style="green")
     if status == "off-by-teeth":
-        n = _get(edge, "off_by_teeth")
-        return Text(f"OFF {n:+d}" if isinstance(n, int) else "OFF", style="bold red")
+        n = _cmp(edge, "off_by_teeth")
+        trig = " trig." if _cmp(edge, "tooth_kind") == "trigger" else ""
+        return Text(f"OFF {n:+d}{trig}" if isinstance(n, int) else "OFF", style="bold red")
     if status == "drifted":
         return Text("DRIFTED", style="bold yellow")
     return Text(str(status).upper(), style="bold yellow")
@@ -313,7 +323,7 @@ def _cam_table(cam: CamResult) -> Table:
     With expected angles, the cycle angle, min and max give way to expected, deviation and
     status.
     """
-    compared = any(_get(e, "expected_deg") is not None for e in cam.edges)
+    compared = any(_cmp(e, "expected_deg") is not None for e in cam.edges)
     columns: list[tuple[str, str]] = [
         ("edge", "left"),
         ("signal", "left"),
@@ -344,8 +354,8 @@ def _cam_table(cam: CamResult) -> Table:
         row += _cells(str(a.n), fmt_deg(jitter_pp, 3, unit=False))
         if compared:
             row += _cells(
-                fmt_deg(_get(edge, "expected_deg"), unit=False),
-                fmt_deg(_get(edge, "deviation_deg"), sign=True, unit=False),
+                fmt_deg(_cmp(edge, "expected_deg"), unit=False),
+                fmt_deg(_cmp(edge, "deviation_deg"), sign=True, unit=False),
                 _status_text(edge),
             )
         table.add_row(*row)
@@ -353,7 +363,7 @@ def _cam_table(cam: CamResult) -> Table:
 
 
 def _cam_caption(cam: CamResult) -> str:
-    compared = any(_get(e, "expected_deg") is not None for e in cam.edges)
+    compared = any(_cmp(e, "expected_deg") is not None for e in cam.edges)
     if compared:
         return "deg CA after the crank reference; dev. + = late; OFF +n: n teeth late, - early"
     return "deg CA after the crank reference (0-360); cycle = angle + 360 in revolution 1"
@@ -445,6 +455,268 @@ def render_cam(cam: CamResult, console: Console) -> None:
         console.print(Text(note))
 
 
+# --------------------------------------------------------------------------- timing verdict
+
+#: ruler mark of a measured edge by status (the character tells it without colour, too)
+RULER_MARKS: dict[str | None, tuple[str, str]] = {
+    "off-by-teeth": ("X", "bold white on red"),
+    "drifted": ("~", "bold yellow"),
+    "in-time": ("o", "green"),
+    None: (".", "dim"),
+}
+#: ruler mark of an expected edge
+RULER_EXPECTED = ("|", "cyan")
+_MARK_RANK = {"X": 3, "~": 2, "o": 1, ".": 0}
+_STATUS_STYLE = {"off-by-teeth": "bold red", "drifted": "bold yellow", "in-time": "green"}
+
+
+def _compared_edges(cam: CamResult) -> list[CamEdge]:
+    return [e for e in cam.edges if _cmp(e, "status") is not None]
+
+
+def _ruler_period(result: DecodeResult) -> float:
+    periods = [
+        _get(_get(e, "comparison"), "period_deg") for c in result.cams for e in _compared_edges(c)
+    ]
+    return 720.0 if any(p == 720.0 for p in periods) else 360.0
+
+
+def _measured_pos(edge: CamEdge, period: float) -> float | None:
+    if period == 720.0 and edge.revolution is not None:
+        return edge.cycle_angle
+    return edge.angle.mean if _finite(edge.angle.mean) else None
+
+
+def _expected_pos(edge: CamEdge, period: float) -> float | None:
+    comparison = _get(edge, "comparison")
+    if comparison is None:
+        return None
+    if period == 720.0:
+        cycle = _get(comparison, "expected_cycle_deg")
+        if _finite(cycle):
+            return float(cycle)
+    expected = _get(comparison, "expected_deg")
+    return float(expected) if _finite(expected) else None
+
+
+def _cam_names(result: DecodeResult) -> dict[str, str]:
+    """Channel -> the cam's name in the reference."""
+    verdict = _get(result, "verdict")
+    out: dict[str, str] = {}
+    for c in _get(verdict, "cams", ()) or ():
+        if _get(c, "channel") is not None:
+            out[_get(c, "channel")] = _get(c, "name")
+    return out
+
+
+def timing_ruler(result: DecodeResult, width: int) -> list[Text]:
+    """The cycle (or one revolution) as a ruler: for each compared cam a row of expected marks
+    (``|``) over a row of measured marks (``o`` in time, ``~`` drifted, ``X`` off by whole
+    teeth, highlighted; ``.`` not compared), under a scale in deg CA after the crank reference
+    with ``T`` at TDC of cylinder 1 when the profile gives it."""
+    period = _ruler_period(result)
+    names = _cam_names(result)
+    cams = [c for c in result.cams if _compared_edges(c)]
+    label_w = min(20, max([len(names.get(c.channel, c.channel)) for c in cams] + [4]) + 6)
+    n = max(36, width - label_w)
+
+    def col(angle: float) -> int:
+        return int(min(n - 1, max(0, round((angle % period) / period * (n - 1)))))
+
+    def row(cells: list[tuple[str, str]], label: str) -> Text:
+        text = Text(f"{label[: label_w - 1]:<{label_w}}")
+        for ch, style in cells:
+            text.append(ch, style=style)
+        text.rstrip()
+        return text
+
+    axis = [("-", "dim")] * n
+    step = period / 8.0
+    for k in range(9):
+        axis[min(n - 1, round(k * step / period * (n - 1)))] = ("|" if k % 4 == 0 else "+", "dim")
+    tdc = _get(_get(result, "verdict"), "tdc_after_reference_deg")
+    if _finite(tdc):
+        for a in (tdc, tdc + 360.0) if period == 720.0 else (tdc,):
+            if a < period:
+                axis[col(a)] = ("T", "bold magenta")
+    scale = [" "] * n
+    for k in range(5):
+        value = k * period / 4.0
+        label = f"{value:.0f}"
+        at = col(value) if k < 4 else n - 1
+        start = at - len(label) + 1 if k == 4 else (at if k == 0 else at - len(label) // 2)
+        for i, ch in enumerate(label):
+            if 0 <= start + i < n:
+                scale[start + i] = ch
+    frame = "0-720 (revolutions 0 and 1)" if period == 720.0 else "0-360 (one revolution)"
+    lines = [
+        Text(f"Timing ruler: deg CA after the crank reference, {frame}", style="bold"),
+        row([(ch, "dim") for ch in scale], ""),
+        row(axis, ""),
+    ]
+    for cam in cams:
+        expected = [(" ", "")] * n
+        measured = [(" ", "")] * n
+        for edge in cam.edges:
+            exp = _expected_pos(edge, period)
+            if exp is not None:
+                expected[col(exp)] = RULER_EXPECTED
+            pos = _measured_pos(edge, period)
+            if pos is None:
+                continue
+            mark = RULER_MARKS.get(_cmp(edge, "status"), RULER_MARKS[None])
+            here = measured[col(pos)][0]
+            if _MARK_RANK.get(mark[0], 0) >= _MARK_RANK.get(here, -1):
+                measured[col(pos)] = mark
+        name = names.get(cam.channel, cam.channel)
+        lines.append(row(expected, f"{name} exp"))
+        lines.append(row(measured, f"{' ' * len(name)} meas"))
+    legend = Text("")
+    for ch, style, what in (
+        (*RULER_EXPECTED, "expected"),
+        (*RULER_MARKS["in-time"], "in time"),
+        (*RULER_MARKS["drifted"], "drifted"),
+        (*RULER_MARKS["off-by-teeth"], "off by whole teeth"),
+        ("T", "bold magenta", "TDC cyl. 1"),
+    ):
+        if ch == "T" and not _finite(tdc):
+            continue
+        legend.append(ch, style=style)
+        legend.append(f" {what}   ")
+    legend.rstrip()
+    lines.append(legend)
+    return lines
+
+
+def fmt_tdc(x: float | None) -> str:
+    """An angle from TDC: negative before (BTDC), positive after (ATDC).
+
+    >>> fmt_tdc(-12.34), fmt_tdc(5.0), fmt_tdc(None)
+    ('12.3 BTDC', '5.0 ATDC', 'n/a')
+    """
+    if not _finite(x):
+        return _NA
+    return f"{-x:.1f} BTDC" if x < 0 else f"{x:.1f} ATDC"
+
+
+def _teeth(x: float | None) -> str:
+    return f"{x:+.2f}" if _finite(x) else "-"
+
+
+def _verdict_table(result: DecodeResult) -> Table:
+    """One row per compared edge: expected and measured positions, deviation with its
+    uncertainty, in teeth, from TDC, and the status."""
+    period = _ruler_period(result)
+    verdict = _get(result, "verdict")
+    tdc = _finite(_get(verdict, "tdc_after_reference_deg"))
+    columns = [
+        ("cam edge", "left"),
+        ("exp.", "right"),
+        ("meas.", "right"),
+        ("dev.", "right"),
+        ("±1σ", "right"),
+        ("trig.", "right"),
+        ("drive", "right"),
+    ]
+    if tdc:
+        columns.append(("from TDC", "right"))
+    columns.append(("status", "left"))
+    table = _table(*columns, compact=True)
+    names = _cam_names(result)
+    for cam in result.cams:
+        for edge in _compared_edges(cam):
+            window = "W?" if edge.window is None else f"W{edge.window}"
+            flank = {"leading": "lead", "trailing": "trail"}.get(edge.flank, edge.flank)
+            cells = _cells(
+                f"{names.get(cam.channel, cam.channel)} {window} {flank}",
+                fmt_deg(_expected_pos(edge, period), unit=False),
+                fmt_deg(_measured_pos(edge, period), unit=False),
+                Text(
+                    fmt_deg(_cmp(edge, "deviation_deg"), sign=True, unit=False),
+                    style=_STATUS_STYLE.get(_cmp(edge, "status"), ""),
+                ),
+                fmt_deg(_cmp(edge, "uncertainty_deg"), unit=False),
+                _teeth(_cmp(edge, "deviation_trigger_teeth")),
+                _teeth(_cmp(edge, "deviation_drive_teeth")),
+            )
+            if tdc:
+                cells += _cells(fmt_tdc(_cmp(edge, "from_tdc_deg")))
+            cells += [_status_text(edge)]
+            table.add_row(*cells)
+    return table
+
+
+def render_verdict(result: DecodeResult, console: Console) -> None:
+    """The timing section: what was compared with, the ruler, and every compared edge."""
+    verdict = _get(result, "verdict")
+    if verdict is None:
+        return
+    kind = _get(verdict, "reference_kind", "profile")
+    name = _get(verdict, "profile_name", "")
+    _heading(console, f"Timing against {kind} {name}")
+    reference = str(_get(verdict, "reference", ""))
+    teeth = _get(verdict, "sprocket_teeth")
+    drive = _get(verdict, "drive") or "drive"
+    crank = result.crank
+    rows: list[tuple[str, Text | str]] = [
+        ("reference", f"{kind} {name!r}" + (f" from {reference}" if reference != name else "")),
+    ]
+    tolerances = sorted({_get(c, "tolerance_deg") for c in _get(verdict, "cams", ())})
+    tolerance = ", ".join(f"±{t:g}° CA" for t in tolerances if _finite(t)) or "n/a"
+    rows.append(("tolerance", tolerance))
+    if isinstance(teeth, int) and teeth > 0:
+        rows.append(
+            ("drive tooth", f"{teeth}-tooth {drive} sprocket: one drive tooth = "
+             f"{fmt_deg(720.0 / teeth)} CA")
+        )
+    else:
+        rows.append(("drive tooth", "unknown; give --sprocket-teeth T for deviations in teeth"))
+    rows.append(("trigger tooth", f"{crank.wheel} crank wheel: {fmt_deg(crank.pitch_deg)} CA"))
+    tdc = _get(verdict, "tdc_after_reference_deg")
+    if _finite(tdc):
+        rows.append(("TDC cyl. 1", f"{fmt_deg(tdc, 1)} CA after the crank reference"))
+    rpm = crank.rpm
+    rows.append(
+        (
+            "engine speed",
+            f"measured at {fmt_rpm(_get(verdict, 'rpm'))} rpm mean "
+            f"(min {fmt_rpm(rpm.min)}, max {fmt_rpm(rpm.max)})",
+        )
+    )
+    console.print(_facts(rows))
+    if any(_compared_edges(c) for c in result.cams):
+        console.print()
+        title, *rows = timing_ruler(result, console.width)
+        console.print(title)
+        for line in rows:
+            console.print(line, overflow="crop", no_wrap=True)
+        console.print()
+        console.print(_verdict_table(result))
+        console.print(
+            Text(
+                "deg CA; exp./meas. on the ruler's frame; dev. + = late; ±1σ: standard "
+                "uncertainty (k = 1); trig./drive: deviation in crank trigger / cam drive teeth",
+                style="dim",
+            )
+        )
+
+
+def verdict_lines(verdict: Any) -> list[Text]:
+    """The verdict in words, one line per cam and per joint finding, then the context."""
+    styles = {
+        _get(c, "sentence"): _STATUS_STYLE.get(_get(c, "status"), "")
+        for c in _get(verdict, "cams", ()) or ()
+    }
+    lines = []
+    for sentence in _get(verdict, "sentences", ()) or ():
+        text = Text("  ")
+        text.append(str(sentence), style=styles.get(sentence, ""))
+        lines.append(text)
+    for note in _get(verdict, "context", ()) or ():
+        lines.append(Text(f"  {note}", style="italic"))
+    return lines
+
+
 # --------------------------------------------------------------------------- findings
 
 
@@ -453,6 +725,9 @@ def _sorted_findings(result: DecodeResult) -> list[tuple[str, Finding]]:
     tagged += [(f"crank {result.crank.channel}", f) for f in result.crank.findings]
     for cam in result.cams:
         tagged += [(f"cam {cam.channel}", f) for f in cam.findings]
+    verdict = _get(result, "verdict")
+    if verdict is not None:
+        tagged += [("timing", f) for f in verdict.findings]
     return sorted(tagged, key=lambda wf: _SEVERITY_ORDER.get(wf[1].severity, 3))
 
 
@@ -495,7 +770,7 @@ def marks_out_of_time(result: DecodeResult) -> list[tuple[CamResult, CamEdge]]:
         (cam, edge)
         for cam in result.cams
         for edge in cam.edges
-        if _get(edge, "status") not in (None, IN_TIME)
+        if _cmp(edge, "status") not in (None, IN_TIME)
     ]
 
 
@@ -508,14 +783,20 @@ def _verdict(result: DecodeResult) -> Text:
         f"{fmt_rpm(crank.rpm.mean)} rpm mean; {len(result.cams)} cam channel"
         f"{'s' if len(result.cams) != 1 else ''}, {n_edges} edge{'s' if n_edges != 1 else ''}. "
     )
-    compared = any(_get(e, "status") is not None for c in result.cams for e in c.edges)
+    compared = any(_cmp(e, "status") is not None for c in result.cams for e in c.edges)
     late = marks_out_of_time(result)
     if not compared:
         text.append("No expected angles were given, so no timing verdict.")
     elif not late:
         text.append("Every compared mark is in time.", style="bold green")
     else:
-        names = ", ".join(f"{c.channel} {edge_label(e)}" for c, e in late)
+        if len(late) <= 4:
+            names = ", ".join(f"{c.channel} {edge_label(e)}" for c, e in late)
+        else:
+            per_cam: dict[str, int] = {}
+            for c, _e in late:
+                per_cam[c.channel] = per_cam.get(c.channel, 0) + 1
+            names = ", ".join(f"{n} on {ch}" for ch, n in per_cam.items())
         text.append(
             f"{len(late)} mark{'s' if len(late) != 1 else ''} out of tolerance: {names}.",
             style="bold red",
@@ -556,9 +837,15 @@ def render_decode(result: DecodeResult, console: Console, notes: Sequence[str] =
     if not result.cams:
         _heading(console, "Cams")
         console.print(Text("no cam channel was decoded", style="yellow"))
+    verdict = _get(result, "verdict")
+    if verdict is not None:
+        render_verdict(result, console)
     render_findings(result, console)
     console.print()
     console.print(_verdict(result))
+    if verdict is not None:
+        for line in verdict_lines(verdict):
+            console.print(line)
     for note in notes:
         console.print(Text(note, style="dim"))
     render_safety(console)

@@ -87,6 +87,74 @@ class JitterStats:
 
 
 @dataclass(frozen=True)
+class EdgeComparison:
+    """How one measured cam edge sits against its expected position (an engine profile or a
+    known-good capture). Angles in deg CA; a positive deviation means late (retarded).
+
+    ``to_json()`` gives the fields DESIGN.md names; :class:`CamEdge` merges them into its own.
+
+    >>> c = EdgeComparison(120.0, 0, 17.1, 2.85, 1.0, 0.05, "off-by-teeth", 1, "drive", 3.0, 720.0)
+    >>> c.expected_cycle_deg, c.to_json()["off_by_teeth"], c.to_json()["tooth_kind"]
+    (120.0, 1, 'drive')
+    """
+
+    #: expected angle after the most recent crank reference event, 0 <= angle < 360
+    expected_deg: float
+    #: revolution of the cycle the expected edge falls in (0 or 1); None when compared per
+    #: revolution (one side does not know the cycle phase)
+    expected_revolution: int | None
+    #: measured - expected, wrapped to (-360, 360] on the cycle or (-180, 180] per revolution
+    deviation_deg: float
+    #: deviation in crank trigger wheel teeth (deviation / crank pitch)
+    deviation_trigger_teeth: float
+    #: deviation in cam drive teeth (deviation / (720 / T)); None when T is not known
+    deviation_drive_teeth: float | None
+    #: standard uncertainty of the deviation (1 sigma, coverage factor k = 1), deg CA
+    uncertainty_deg: float
+    #: "in-time", "drifted" or "off-by-teeth"
+    status: str
+    #: whole teeth off (signed, + = late) when the status is "off-by-teeth", else None
+    off_by_teeth: int | None
+    #: which teeth ``off_by_teeth`` counts: "drive" (cam sprocket) or "trigger" (crank wheel)
+    tooth_kind: str | None
+    #: tolerance the deviation was held against, deg CA
+    tolerance_deg: float
+    #: 720.0 when compared on the cycle, 360.0 when compared per revolution
+    period_deg: float
+    #: measured angle from the nearest TDC of cylinder 1 (- = BTDC, + = ATDC), when the profile
+    #: gives the angle from the reference event to TDC
+    from_tdc_deg: float | None = None
+    #: expected angle from the nearest TDC of cylinder 1 (- = BTDC, + = ATDC)
+    expected_from_tdc_deg: float | None = None
+
+    @property
+    def expected_cycle_deg(self) -> float | None:
+        """Expected angle in the 720 deg cycle, when the revolution is known."""
+        if self.expected_revolution is None:
+            return None
+        return self.expected_revolution * 360.0 + self.expected_deg
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "expected_deg": self.expected_deg,
+            "expected_revolution": self.expected_revolution,
+            "expected_cycle_deg": self.expected_cycle_deg,
+            "deviation_deg": self.deviation_deg,
+            "deviation_trigger_teeth": self.deviation_trigger_teeth,
+            "deviation_drive_teeth": self.deviation_drive_teeth,
+            "uncertainty_deg": self.uncertainty_deg,
+            "uncertainty_k": 1,
+            "status": self.status,
+            "off_by_teeth": self.off_by_teeth,
+            "tooth_kind": self.tooth_kind,
+            "tolerance_deg": self.tolerance_deg,
+            "compared_on_deg": self.period_deg,
+            "from_tdc_deg": self.from_tdc_deg,
+            "expected_from_tdc_deg": self.expected_from_tdc_deg,
+        }
+
+
+@dataclass(frozen=True)
 class CamEdge:
     """One distinct edge of a cam pattern and every occurrence of it."""
 
@@ -104,6 +172,8 @@ class CamEdge:
     jitter: JitterStats | None = None
     #: index of the tooth/window this edge belongs to in the cam pattern (0-based)
     window: int | None = None
+    #: the edge against its expected position, after a comparison (``verdict.compare``)
+    comparison: EdgeComparison | None = None
 
     @property
     def cycle_angle(self) -> float | None:
@@ -124,6 +194,8 @@ class CamEdge:
         }
         if self.jitter is not None:
             d["jitter"] = self.jitter.to_json()
+        if self.comparison is not None:
+            d.update(self.comparison.to_json())
         return d
 
 
@@ -188,7 +260,7 @@ class CrankResult:
     missing_teeth: int = 0
     jitter: JitterStats | None = None
     findings: tuple[Finding, ...] = ()
-    #: (time_s, rpm) per tooth, decimated for plots and reports
+    #: (time_s, rpm) per tooth interval (mid-time), thinned to one per time bucket on long captures
     rpm_trace: tuple[tuple[float, float], ...] = ()
 
     @property
@@ -209,11 +281,125 @@ class CrankResult:
             "extra_teeth": self.extra_teeth,
             "missing_teeth": self.missing_teeth,
             "reference_times_s": list(self.reference_times_s),
+            "rpm_per_tooth": {
+                "time_s": [t for t, _ in self.rpm_trace],
+                "rpm": [r for _, r in self.rpm_trace],
+            },
             "findings": [f.to_json() for f in self.findings],
         }
         if self.jitter is not None:
             d["jitter"] = self.jitter.to_json()
         return d
+
+
+@dataclass(frozen=True)
+class CamComparison:
+    """One cam against its expected positions: the shift common to its edges and the call.
+
+    A belt or chain that jumps moves every edge of a cam together, so the common shift is the
+    cam's answer; each edge also carries its own :class:`EdgeComparison`.
+    """
+
+    #: cam name from the profile (or the reference capture's channel name)
+    name: str
+    #: channel of this capture the cam was found on; None when no decoded cam matched
+    channel: str | None
+    #: common shift of the cam's edges (mean of their deviations), deg CA, + = late
+    shift_deg: float
+    #: standard uncertainty of the shift (1 sigma), deg CA
+    uncertainty_deg: float
+    #: shift / crank pitch
+    shift_trigger_teeth: float
+    #: shift / (720 / T), when T is known
+    shift_drive_teeth: float | None
+    #: "in-time", "drifted", "off-by-teeth", or "not-measured" (no decoded cam matched)
+    status: str
+    off_by_teeth: int | None
+    #: "drive" or "trigger" when ``off_by_teeth`` is set
+    tooth_kind: str | None
+    tolerance_deg: float
+    #: teeth T on the cam drive sprocket, when known
+    sprocket_teeth: int | None
+    #: 720.0 when compared on the cycle, 360.0 when per revolution
+    period_deg: float
+    #: expected edges matched with a measured edge / expected edges
+    matched: int
+    expected: int
+    #: the call in the trade's words, e.g. "intake cam 1 drive tooth late (17.1 deg CA retarded)"
+    sentence: str
+    #: SAE J2012 crankshaft/camshaft position correlation code for this cam's bank and sensor,
+    #: when the profile names them and the cam is out of tolerance
+    correlation_code: str | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "channel": self.channel,
+            "shift_deg": self.shift_deg,
+            "uncertainty_deg": self.uncertainty_deg,
+            "shift_trigger_teeth": self.shift_trigger_teeth,
+            "shift_drive_teeth": self.shift_drive_teeth,
+            "status": self.status,
+            "off_by_teeth": self.off_by_teeth,
+            "tooth_kind": self.tooth_kind,
+            "tolerance_deg": self.tolerance_deg,
+            "sprocket_teeth": self.sprocket_teeth,
+            "compared_on_deg": self.period_deg,
+            "matched": self.matched,
+            "expected": self.expected,
+            "sentence": self.sentence,
+            "correlation_code": self.correlation_code,
+        }
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """The timing verdict of a decode compared with an engine profile or a known-good capture."""
+
+    #: what was compared with: a profile file, a shipped profile name or a reference JSON path
+    reference: str
+    #: "profile" or "known-good capture"
+    reference_kind: str
+    #: the profile's name
+    profile_name: str
+    #: tolerance applied where the profile gives none for a cam, deg CA
+    tolerance_deg: float
+    #: teeth on the cam drive sprocket (profile or command line), when known
+    sprocket_teeth: int | None
+    #: "belt", "chain" or "gear", when the profile says
+    drive: str | None
+    #: angle from the crank reference event to TDC of cylinder 1, when the profile gives it
+    tdc_after_reference_deg: float | None
+    #: mean engine speed of the capture the verdict was measured at, rpm
+    rpm: float
+    cams: tuple[CamComparison, ...]
+    #: the verdict in words: one sentence per cam, then what the cams tell together
+    sentences: tuple[str, ...]
+    #: background worth knowing (the diagnostic trouble code family such a fault sets)
+    context: tuple[str, ...] = ()
+    findings: tuple[Finding, ...] = ()
+
+    @property
+    def in_time(self) -> bool:
+        """True when every compared cam is in time."""
+        return all(c.status in ("in-time", "not-measured") for c in self.cams)
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "reference": self.reference,
+            "reference_kind": self.reference_kind,
+            "profile_name": self.profile_name,
+            "tolerance_deg": self.tolerance_deg,
+            "sprocket_teeth": self.sprocket_teeth,
+            "drive": self.drive,
+            "tdc_after_reference_deg": self.tdc_after_reference_deg,
+            "rpm": self.rpm,
+            "in_time": self.in_time,
+            "cams": [c.to_json() for c in self.cams],
+            "sentences": list(self.sentences),
+            "context": list(self.context),
+            "findings": [f.to_json() for f in self.findings],
+        }
 
 
 @dataclass(frozen=True)
@@ -227,12 +413,16 @@ class DecodeResult:
     findings: tuple[Finding, ...] = ()
     #: how each choice was made (e.g. {"crank": "hint", "wheel": "identified (confidence 0.98)"})
     choices: dict[str, str] = field(default_factory=dict)
+    #: the timing verdict, after a comparison with an engine profile or a known-good capture
+    verdict: Verdict | None = None
 
     @property
     def all_findings(self) -> list[Finding]:
         out = list(self.findings) + list(self.crank.findings)
         for c in self.cams:
             out.extend(c.findings)
+        if self.verdict is not None:
+            out.extend(self.verdict.findings)
         return out
 
     def to_json(self) -> dict[str, Any]:
@@ -251,4 +441,5 @@ class DecodeResult:
             "cams": [c.to_json() for c in self.cams],
             "findings": [f.to_json() for f in self.findings],
             "choices": dict(self.choices),
+            **({"verdict": self.verdict.to_json()} if self.verdict is not None else {}),
         }
