@@ -72,6 +72,7 @@ class HallFrontEnd:
         plateau: int = 3,
         max_run: int | None = None,
         despike: int = 1,
+        persist: int = 0,
     ) -> None:
         self.sample_rate = float(sample_rate)
         #: step height (channel units) a flank must exceed
@@ -85,7 +86,13 @@ class HallFrontEnd:
         #: running-median length that removes spikes before detection (1: none)
         self.despike = int(despike) | 1
         self._half = self.despike // 2
-        self._keep = self.window + self.plateau + self.max_run + 4 + 2 * self._half
+        #: samples after a flank at which the new level must still hold (a spike's decay
+        #: does not); 0 checks only right after the flank
+        self.persist = max(0, int(persist))
+        self._keep = (
+            self.window + self.plateau + self.max_run + 4 + 2 * self._half + self.persist
+        )
+        self._last: tuple[float, int] | None = None  # (position, direction) of the last edge
         self._buf = np.empty(0)
         self._buf_start = 0
         self._done = 0  # runs starting before this global index have been handled
@@ -128,6 +135,10 @@ class HallFrontEnd:
             gaps = gaps[gaps > 2 * window]
             shortest = float(np.percentile(gaps, 10)) if len(gaps) else 0.0
             opts["plateau"] = int(np.clip((shortest - window) // 3, 1, 3))
+            # a real level lasts at least the shortest gap between flanks; a spike's tail
+            # does not: check the level again halfway through that time, but no later than
+            # 1 ms on (ignition spikes last tens of microseconds; AC-coupling droop is slow)
+            opts["persist"] = int(np.clip(min(0.5 * shortest - 3, 1e-3 * sample_rate), 0, None))
             # a running median removes ignition spikes (only where there are any); it must be
             # shorter than any real level
             if has_spikes(probe, 0.3 * float(np.median(edges.strength))):
@@ -144,6 +155,12 @@ class HallFrontEnd:
         self._buf = buf[len(buf) - keep :].copy()
         self._buf_start += len(buf) - keep
         return out
+
+    def _ordered(
+        self, pos: np.ndarray, sign: np.ndarray, step: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        pos, sign, step, self._last = _ordered_edges(self._last, pos, sign, step, self.window)
+        return pos, sign, step
 
     @property
     def settled_s(self) -> float:
@@ -177,9 +194,10 @@ class HallFrontEnd:
         s, e, sign = s[order], e[order], sign[order]
         g = self._buf_start
         # a run is complete when the sample after it and the post-flank plateau are here
-        complete = (e + w + half < n - 1) | final
+        P = self.persist
+        complete = (e + w + half + P < n - 1) | final
         fresh = s + g >= self._done
-        enough = (s - W - w - half >= 0) & (e + w < n)
+        enough = (s - W - w - half >= 0) & (e + w + P < n)
         sel = complete & fresh & enough
         # runs that are complete but lack history (start of capture) are given up for good
         if np.any(complete & fresh):
@@ -201,6 +219,14 @@ class HallFrontEnd:
         pre_i, post_i = pre_i[keep], post_i[keep]
         if len(s) == 0:
             return Edges.empty()
+        if P > 0:
+            # the new level must still hold later on (a spike's tail has gone by then)
+            later = level(buf[post_i + P])
+            held = (later - lo) * sign > 0.5 * step
+            s, e, sign, lo, hi, step = s[held], e[held], sign[held], lo[held], hi[held], step[held]
+            pre_i, post_i = pre_i[held], post_i[held]
+            if len(s) == 0:
+                return Edges.empty()
         # levels as recorded, unless a spike sits in them (then the cleaned ones)
         lo_raw, hi_raw = level(raw[pre_i]), level(raw[post_i])
         clean = (np.abs(lo_raw - lo) < 0.1 * step) & (np.abs(hi_raw - hi) < 0.1 * step)
@@ -219,7 +245,28 @@ class HallFrontEnd:
         pos_raw = (k_raw + g) + linear_crossing(raw, k_raw, mid)
         pos_med = (k_med + g) + linear_crossing(buf, k_med, mid)
         pos = np.where(ok_raw, pos_raw, pos_med)
+        pos, sign, step = self._ordered(pos, sign, step)
         return Edges(pos / self.sample_rate, sign, step)
+
+
+def _ordered_edges(
+    last: tuple[float, int] | None,
+    pos: np.ndarray,
+    sign: np.ndarray,
+    step: np.ndarray,
+    min_gap: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, tuple[float, int] | None]:
+    """Drop flanks that do not come strictly after the previous one, or that repeat its
+    direction within ``min_gap`` samples (the same flank found twice)."""
+    keep = np.ones(len(pos), dtype=bool)
+    for i in range(len(pos)):
+        if last is not None and (
+            pos[i] <= last[0] or (sign[i] == last[1] and pos[i] - last[0] < min_gap)
+        ):
+            keep[i] = False
+            continue
+        last = (float(pos[i]), int(sign[i]))
+    return pos[keep], sign[keep], step[keep], last
 
 
 def _median(x: np.ndarray) -> np.ndarray:

@@ -57,7 +57,7 @@ class VrFrontEnd:
         #: the signal's zero (a DC-coupled instrument may add an offset)
         self.offset = float(levels.mean if offset is None else offset)
         # common practice, no source: an arming level several noise sigmas above zero keeps
-        # noise from re-triggering
+        # noise from re-triggering (calibrate() measures the noise far better than this)
         self.floor = float(floor) if floor is not None else max(5.0 * levels.noise, 1e-12)
         #: arming threshold as a fraction of the envelope
         self.fraction = float(fraction)
@@ -77,24 +77,36 @@ class VrFrontEnd:
         self._open_peak = 0.0
         self._state = 0  # sign of the last significant half-wave
         self._last_peak = {1: 0.0, -1: 0.0}
+        #: slow average of significant peaks: the threshold never drops below a fraction of it,
+        #: so a quiet stretch (the gap, a dropout) cannot arm on noise
+        self._slow = self.envelope
+        self._width = 0.0  # typical duration of a significant half-wave (samples)
 
     @classmethod
     def calibrate(
         cls, probe: np.ndarray, sample_rate: float, levels: ChannelLevels
     ) -> dict[str, Any]:
-        """Starting envelope from the first part of the channel (its 99th percentile)."""
+        """Starting envelope, noise floor and spike removal from the first part of the channel.
+
+        The noise floor comes from the spectrum, not from sample differences (which at a few
+        samples per tooth measure the signal's own slope): the median periodogram value over
+        the upper part of the band, where a tooth train puts only narrow lines, gives the white
+        noise level; the floor is also kept above a few quantisation steps.
+        """
         probe = np.asarray(probe, dtype=float)
         if len(probe) == 0:
             return {}
+        y = probe - levels.mean
         # start from the amplitude at the start: a capture that begins slow (cranking) and
         # speeds up must not have its first teeth judged against the later, larger swings
-        head = probe[: max(2000, int(0.05 * sample_rate))]
-        envelope = float(np.max(np.abs(head - levels.mean)))
-        first = cls(sample_rate, levels, envelope=envelope)
+        head = y[: max(2000, int(0.05 * sample_rate))]
+        envelope = float(np.max(np.abs(head)))
+        floor = max(4.0 * spectral_noise(y), 3.0 * quantisation_step(probe), 1e-12)
+        first = cls(sample_rate, levels, envelope=envelope, floor=floor)
         edges = Edges.concat([first.process(probe, 0), first.finish()])
-        opts: dict[str, Any] = {"envelope": envelope}
+        opts: dict[str, Any] = {"envelope": envelope, "floor": floor}
         spike = 0.3 * float(np.median(edges.strength)) if len(edges) else 0.0
-        if len(edges) >= 4 and has_spikes(probe - levels.mean, spike):
+        if len(edges) >= 4 and has_spikes(y, spike):
             # a running median removes ignition spikes; it must be short against a half-wave
             half_wave = float(np.percentile(np.diff(edges.times), 10)) * sample_rate
             opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
@@ -127,7 +139,9 @@ class VrFrontEnd:
             e = self._scan(self._tail, final=True)
             times, dirs, strength = list(e.times), list(e.direction), list(e.strength)
         # the last half-wave ends with the capture
-        self._close(self._open_start, self._open_sign, self._open_peak, times, dirs, strength)
+        self._close(
+            self._open_start, None, self._open_sign, self._open_peak, times, dirs, strength
+        )
         self._open_start = None
         self._tail = np.empty(0)
         return self._edges(times, dirs, strength)
@@ -144,27 +158,40 @@ class VrFrontEnd:
     def _close(
         self,
         start: float | None,
+        end: float | None,
         sign: int,
         peak: float,
         times: list[float],
         dirs: list[int],
         strength: list[float],
     ) -> None:
-        """A half-wave of ``sign`` that began at crossing ``start`` has ended with ``peak``."""
+        """A half-wave of ``sign`` from crossing ``start`` to ``end`` (samples) has ended."""
         if sign == 0:
             return
-        arm = max(self.floor, self.fraction * self.envelope)
-        if peak >= arm:
-            if sign != self._state and start is not None:
-                times.append(start)
-                dirs.append(sign)
-                strength.append(peak + self._last_peak[-sign])
-            self._state = sign
-            self._last_peak[sign] = peak
-            # a spike that got through must not lift the threshold over the next real teeth
-            self.envelope = 0.5 * (self.envelope + min(peak, 4.0 * self.envelope))
-        else:
+        arm = max(self.floor, self.fraction * self.envelope, 0.12 * self._slow)
+        if peak < arm:
             self.envelope = max(self.envelope * self.decay, self.floor)
+            return
+        width = (end - start) if (start is not None and end is not None) else None
+        if (
+            width is not None
+            and self._width > 0
+            and width < 0.25 * self._width
+            and peak > 2.0 * self.envelope
+        ):
+            # far shorter and taller than the teeth around it: an ignition spike, not a tooth
+            return
+        if sign != self._state and start is not None:
+            times.append(start)
+            dirs.append(sign)
+            strength.append(peak + self._last_peak[-sign])
+        self._state = sign
+        self._last_peak[sign] = peak
+        # a spike that got through must not lift the threshold over the next real teeth
+        self.envelope = 0.5 * (self.envelope + min(peak, 4.0 * self.envelope))
+        self._slow += 0.05 * (min(peak, 4.0 * self._slow) - self._slow)
+        if width is not None:
+            self._width = width if self._width == 0 else self._width + 0.1 * (width - self._width)
 
     def _scan(self, raw: np.ndarray, final: bool) -> Edges:
         g = self._tail_start
@@ -204,8 +231,54 @@ class VrFrontEnd:
             self._open_sign = 1 if positive[0] else -1
         self._open_peak = max(self._open_peak, float(seg[0]))
         for j, k in enumerate(kk):
-            self._close(self._open_start, self._open_sign, self._open_peak, times, dirs, strength)
+            self._close(
+                self._open_start,
+                float(pos[j]),
+                self._open_sign,
+                self._open_peak,
+                times,
+                dirs,
+                strength,
+            )
             self._open_start = float(pos[j])
             self._open_sign = 1 if positive[k + 1] else -1
             self._open_peak = float(seg[j + 1])
         return self._edges(times, dirs, strength)
+
+
+def spectral_noise(y: np.ndarray, n_max: int = 1 << 18) -> float:
+    """Standard deviation of the white noise under a signal, from its spectrum.
+
+    For white noise of variance s^2 the periodogram values |X_k|^2 of an N-point transform are
+    exponentially distributed with mean N s^2, so their median is N s^2 ln 2. The median is
+    taken over 0.25..0.45 of the sample rate, where a tooth train leaves only narrow lines.
+    source: distribution of periodogram ordinates of white Gaussian noise (S. M. Kay, "Modern
+    Spectral Estimation", Prentice Hall 1988, ch. 4)
+
+    >>> rng = np.random.default_rng(1)
+    >>> x = 0.2 * rng.normal(size=100_000) + np.sin(np.arange(100_000) * 2 * np.pi / 9.0)
+    >>> round(spectral_noise(x), 2)
+    0.2
+    """
+    y = np.asarray(y, dtype=float)[:n_max]
+    n = len(y)
+    if n < 64:
+        return 0.0
+    p = np.abs(np.fft.rfft(y - y.mean())) ** 2
+    band = p[int(0.25 * n) : int(0.45 * n)]
+    if len(band) == 0:
+        return 0.0
+    return float(np.sqrt(np.median(band) / (n * np.log(2.0))))
+
+
+def quantisation_step(x: np.ndarray, n_max: int = 1 << 18) -> float:
+    """Smallest step between distinct sample values (a converter's LSB; tiny for float data).
+
+    >>> quantisation_step(np.round(np.sin(np.arange(1000) / 7.0) * 127) / 128)
+    0.0078125
+    """
+    v = np.unique(np.asarray(x, dtype=float)[:n_max])
+    v = v[np.isfinite(v)]
+    if len(v) < 2:
+        return 0.0
+    return float(np.min(np.diff(v)))
