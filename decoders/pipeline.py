@@ -47,6 +47,7 @@ from .wheels.missing_tooth import (
     MissingToothSpec,
     ToothTracker,
     gap_candidates,
+    gap_fit,
     gap_ratios,
     identify,
     leading_direction,
@@ -94,13 +95,16 @@ def _wheel_from_hint(text: str) -> MissingToothSpec:
 
 
 def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, float]:
-    """How well one direction's events show ``spec``'s gap: (gaps at M+1, median gap ratio)."""
+    """How well one direction's events show ``spec``'s gap: (gaps of M missing teeth, median
+    ratio of those gaps to their neighbours)."""
     cand = gap_candidates(times)
     if len(cand) == 0:
         return 0, 0.0
-    r = gap_ratios(times)[cand]
-    good = np.abs(r / (spec.missing + 1) - 1.0) < 0.2
-    return int(np.count_nonzero(good)), float(np.median(r))
+    m, _ = gap_fit(times)
+    good = cand[m[cand] == spec.missing]
+    if len(good) == 0:
+        return 0, 0.0
+    return len(good), float(np.median(gap_ratios(times)[good]))
 
 
 def crank_direction(

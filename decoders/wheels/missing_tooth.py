@@ -17,6 +17,7 @@ spans M + 1 pitches (60-2: 6 deg pitch, 18 deg across the gap) -- see e.g. Rober
 
 from __future__ import annotations
 
+import itertools
 import math
 import re
 from dataclasses import dataclass
@@ -139,14 +140,68 @@ def gap_ratios(times: np.ndarray) -> np.ndarray:
     return r
 
 
-def gap_candidates(times: np.ndarray, ratio_min: float = GAP_RATIO_MIN) -> np.ndarray:
-    """Intervals that look like a gap: long against both neighbours, neighbours alike."""
+#: quadratic through the pitch periods at positions -1.5, -0.5 (before the interval) and
+#: m + 1.5, m + 2.5 (after it), integrated over the m + 1 pitches the interval would span if
+#: m teeth were missing: weights on (T[i-2], T[i-1], T[i+1], T[i+2]) giving that integral
+def _span_weights(m: int) -> np.ndarray:
+    x = np.array([-1.5, -0.5, m + 1.5, m + 2.5])
+    design = np.vstack([np.ones(4), x, x * x]).T
+    coef = np.linalg.pinv(design)  # (3, 4): least-squares a, b, c from the four periods
+    L = m + 1.0
+    integral = np.array([L, L * L / 2.0, L**3 / 3.0])
+    return integral @ coef
+
+
+_SPAN_WEIGHTS = {m: _span_weights(m) for m in (1, 2, 3)}
+
+
+def gap_fit(times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """For every interval: how many teeth would be missing in it (0 = none) and how far (|log|
+    of measured over expected duration) it is from that.
+
+    The expected duration of an interval spanning m + 1 pitches is the integral, over those
+    pitches, of the quadratic through the pitch periods of the two intervals on each side, so a
+    gap is recognised even where the speed changes fast and unevenly (cranking swings).
+    Where fewer than two intervals lie on a side, the mean of the two direct neighbours is used.
+
+    >>> t = np.cumsum([0, 1, 1, 1, 1, 3, 1, 1, 1, 1.0])      # a gap of three pitches
+    >>> m, err = gap_fit(t)
+    >>> m.tolist(), bool(err[4] < 1e-9)
+    ([0, 0, 0, 0, 2, 0, 0, 0, 0], True)
+    """
     T = np.diff(np.asarray(times, dtype=float))
-    r = gap_ratios(times)
+    n = len(T)
+    best_m = np.zeros(n, dtype=int)
+    best_err = np.full(n, np.inf)
+    if n < 3:
+        return best_m, best_err
+    simple = np.full(n, np.nan)
+    simple[1:-1] = T[1:-1] / (0.5 * (T[:-2] + T[2:]))
     with np.errstate(invalid="ignore", divide="ignore"):
-        alike = np.zeros(len(T), dtype=bool)
-        alike[1:-1] = np.abs(np.log(T[:-2] / T[2:])) < math.log(1.6)
-        return np.flatnonzero((r > ratio_min) & alike)
+        for m in (1, 2, 3):
+            if n >= 5:
+                nb = np.vstack([T[:-4], T[1:-3], T[3:-1], T[4:]])  # neighbours of T[2:-2]
+                expect = _SPAN_WEIGHTS[m] @ nb
+                err = np.full(n, np.inf)
+                err[2:-2] = np.abs(np.log(T[2:-2] / expect))
+            else:
+                err = np.full(n, np.inf)
+            # next to the ends (or where the quadratic misfires), the plain neighbour mean
+            err_simple = np.abs(np.log(simple / (m + 1)))
+            err = np.fmin(err, np.where(np.isfinite(err_simple), err_simple, np.inf))
+            take = (err < best_err) & (simple > GAP_RATIO_MIN - 0.1)
+            best_m = np.where(take, m, best_m)
+            best_err = np.where(take, err, best_err)
+    return best_m, best_err
+
+
+def gap_candidates(times: np.ndarray, ratio_min: float = GAP_RATIO_MIN) -> np.ndarray:
+    """Intervals that look like a gap (or missing teeth): long against their neighbours and
+    within 25 % of a whole number of pitches by :func:`gap_fit`."""
+    m, err = gap_fit(times)
+    r = gap_ratios(times)
+    with np.errstate(invalid="ignore"):
+        return np.flatnonzero((m > 0) & (err < math.log(1.25)) & (r > ratio_min - 0.1))
 
 
 @dataclass(frozen=True)
@@ -154,7 +209,7 @@ class WheelGuess:
     """An N-M wheel identified from tooth periods, and how sure the guess is."""
 
     spec: MissingToothSpec
-    #: 0..1: share of gaps at the spacing the guess implies, times share of gap ratios near M+1
+    #: 0..1: share of revolutions that agree with the guess
     confidence: float
     #: gaps seen
     gaps: int
@@ -165,7 +220,10 @@ class WheelGuess:
 def identify(times: np.ndarray) -> WheelGuess | None:
     """Identify N and M from event times of one direction (tooth centres or leading flanks).
 
-    Returns None when fewer than two gaps are seen or the spacing makes no wheel.
+    Intervals that span whole extra pitches are sorted by how many teeth they miss; the gap is
+    the largest such class that comes back once per revolution (a damaged tooth elsewhere
+    shows as a smaller class). N is the number of pitches from one gap to the next, counting
+    every interval by the pitches it spans. Returns None when no class recurs.
 
     >>> teeth = [k * 6.0 for k in range(58)]                       # a 60-2 wheel, 6 deg pitch
     >>> t = np.array([r * 360 + a for r in range(4) for a in teeth]) / 4800.0   # 800 rpm
@@ -177,17 +235,40 @@ def identify(times: np.ndarray) -> WheelGuess | None:
     cand = gap_candidates(times)
     if len(cand) < 2:
         return None
-    r = gap_ratios(times)[cand]
-    m = int(np.clip(round(float(np.median(r)) - 1.0), 1, 3))
-    spacing = np.diff(cand)
-    values, counts = np.unique(spacing, return_counts=True)
-    k = int(values[np.argmax(counts)])
-    consistency = float(np.max(counts)) / len(spacing)
-    n = k + m
-    if not (3 <= n <= 360) or m >= n - 1:
-        return None
-    near = float(np.mean(np.abs(r / (m + 1) - 1.0) < 0.25))
-    return WheelGuess(MissingToothSpec(n, m), consistency * near, len(cand), float(np.median(r)))
+    m_all, _ = gap_fit(times)
+    ratios = gap_ratios(times)
+    best: WheelGuess | None = None
+    for m in sorted(set(m_all[cand].tolist()), reverse=True):
+        idx = cand[m_all[cand] == m]
+        if len(idx) < 2:
+            continue
+        spacing = np.diff(idx)
+        values, counts = np.unique(spacing, return_counts=True)
+        k = int(values[np.argmax(counts)])
+        share = float(np.max(counts)) / len(spacing)
+        if share < 0.5:
+            continue
+        # pitches from one gap to the next: every interval counted by the pitches it spans
+        pitches = []
+        for a, b in itertools.pairwise(idx):
+            if b - a != k:
+                continue
+            inner = np.arange(a + 1, b)
+            extra = m_all[inner]
+            pitches.append(int(len(inner) + np.sum(extra) + (m + 1)))
+        if not pitches:
+            continue
+        pv, pc = np.unique(pitches, return_counts=True)
+        n = int(pv[np.argmax(pc)])
+        if not (3 <= n <= 360) or m >= n - 1:
+            continue
+        conf = share * float(np.max(pc)) / len(pitches)
+        guess = WheelGuess(
+            MissingToothSpec(n, m), conf, len(idx), float(np.median(ratios[idx]))
+        )
+        if best is None or guess.confidence > best.confidence + 0.2:
+            best = guess
+    return best
 
 
 def long_levels(edges: Edges) -> dict[int, int]:
@@ -314,12 +395,14 @@ class ToothTracker:
                 hi = n - 3
                 if hi < lo:
                     break
-                seg = t[lo - 1 : hi + 3]
-                cand = gap_candidates(seg) + lo - 1
+                # (two more intervals on each side let the gap fit follow fast speed changes)
+                first = max(lo - 2, 0)
+                seg = t[first : hi + 5]
+                cand = gap_candidates(seg) + first
                 cand = cand[(cand >= lo) & (cand <= hi)]
                 if len(cand):
-                    r = gap_ratios(seg)[cand - (lo - 1)]
-                    cand = cand[np.abs(r / (spec.missing + 1) - 1.0) < 0.3]
+                    m_fit, _ = gap_fit(seg)
+                    cand = cand[m_fit[cand - first] == spec.missing]
                 if len(cand) == 0:
                     i = max(i, hi + 1)
                     break
