@@ -59,10 +59,13 @@ Progress = Callable[[str, int, int], None]
 #: length of the probe: the first seconds of the capture, at most this many samples
 PROBE_SECONDS = 4.0
 PROBE_MAX_SAMPLES = 1 << 21
-#: fewest samples per tooth period that still time teeth well
+#: fewest samples per tooth period that still time teeth well (fewer: a warning)
 # common practice, no source: below about 8 samples per tooth the flank/crossing interpolation
 # and the gap ratios both degrade quickly
 MIN_SAMPLES_PER_TOOTH = 8.0
+#: fewer samples per tooth than this at the mean speed: the decode is refused, not guessed
+# common practice, no source: at 5 samples per tooth period a VR half-wave is 2.5 samples long
+SAMPLES_PER_TOOTH_REFUSED = 5.0
 #: most points kept in the per-tooth engine speed trace (longer captures are thinned by time)
 TRACE_POINTS = 50_000
 
@@ -279,34 +282,43 @@ class CrankStats:
         return np.concatenate(self.refs) if self.refs else np.empty(0)
 
 
+#: fewest tooth positions of a crank wheel toothcomb looks for on its own
+MIN_POSITIONS = 4
+
+
 def _pick_crank(
     edges: dict[int, Edges], looks: dict[int, ChannelLook], info: CaptureInfo
 ) -> tuple[int, str]:
-    """The channel whose events show a missing-tooth wheel most clearly."""
-    best: tuple[float, int] | None = None
+    """The crank channel: among the channels whose events show a plausible missing-tooth wheel
+    (at least four positions, most revolutions agreeing), the one with the most teeth per
+    second. A cam pattern can look like a small wheel, but it never has the crank's tooth rate.
+    """
+    plausible: list[tuple[int, int, str]] = []
     for c, e in edges.items():
-        scores = []
-        for d in (1, -1):
-            g = identify(e.times[e.direction == d])
-            if g is not None:
-                scores.append(g.confidence * min(1.0, g.gaps / 4.0))
-        if scores:
-            s = max(scores)
-            # among equals, the channel with more teeth per second is the crank
-            key = (round(s, 2), len(e))
-            if best is None or key > best[0]:  # type: ignore[operator]
-                best = (key, c)  # type: ignore[assignment]
-    if best is None:
-        for c, e in edges.items():
-            few = _too_few_samples(e.times[e.direction == 1], info.sample_rate)
-            if few and looks[c].edge_rate_hz == max(lk.edge_rate_hz for lk in looks.values()):
-                raise DecodeError(f"channel {info.channels[c]!r}: {few}")
-        have = ", ".join(f"{info.channels[c]} ({looks[c].kind})" for c in looks)
-        raise DecodeError(
-            f"no channel shows a missing-tooth crank wheel (channels: {have}); give the crank "
-            "channel with --crank and its wheel with --wheel"
-        )
-    return best[1], "identified: the channel whose tooth periods show a missing-tooth gap"
+        direction, _pol = crank_direction(e, looks[c].kind)
+        g = identify(e.times[e.direction == direction])
+        if g is not None and g.spec.positions >= MIN_POSITIONS and g.confidence >= 0.5:
+            plausible.append((len(e), c, g.spec.name))
+    if plausible:
+        _n, c, name = max(plausible)
+        return c, f"identified: the busiest channel whose tooth periods show a gap ({name})"
+    # nothing plausible: say why, about the channels that could have been the crank
+    busiest = max(edges, key=lambda c: len(edges[c]))
+    e = edges[busiest]
+    few = _too_few_samples(e.times[e.direction == 1], info.sample_rate)
+    if few:
+        raise DecodeError(f"channel {info.channels[busiest]!r}: {few}")
+    parts = [f"{info.channels[busiest]} ({looks[busiest].kind}, {len(e)} edges): no tooth "
+             "interval stands out as a gap"]
+    parts += [
+        f"{info.channels[c]}: {lk.reason}"
+        for c, lk in looks.items()
+        if lk.kind not in ("hall", "vr")
+    ]
+    raise DecodeError(
+        "no channel shows a missing-tooth crank wheel (" + "; ".join(parts) + "); give the "
+        "crank channel with --crank and its wheel with --wheel"
+    )
 
 
 def _stream_prefix(
@@ -524,6 +536,15 @@ def _result(
     fs: float,
 ) -> DecodeResult:
     crank_findings: list[Finding] = list(plan.findings) + stats.findings
+    mean_rpm = stats.deg / stats.sec / 6.0 if stats.sec > 0 else float("nan")
+    teeth_per_s = mean_rpm / 60.0 * plan.spec.positions
+    if teeth_per_s > 0 and fs / teeth_per_s < SAMPLES_PER_TOOTH_REFUSED:
+        raise DecodeError(
+            f"crank channel {info.channels[plan.channel]!r}: {fs:g} Hz gives "
+            f"{fs / teeth_per_s:.1f} samples per tooth at the observed {teeth_per_s:.0f} teeth "
+            f"per second ({mean_rpm:.0f} rpm); at least {MIN_SAMPLES_PER_TOOTH:g} are needed: "
+            f"record at {MIN_SAMPLES_PER_TOOTH * teeth_per_s:.0f} Hz or more"
+        )
     spt = stats.min_pitch_period * fs
     if spt < MIN_SAMPLES_PER_TOOTH:
         crank_findings.append(
@@ -534,7 +555,6 @@ def _result(
                 f"least {MIN_SAMPLES_PER_TOOTH:g} are needed for precise timing",
             )
         )
-    mean_rpm = stats.deg / stats.sec / 6.0 if stats.sec > 0 else float("nan")
     if stats.sec > 0:
         rpm = RpmStats(stats.rpm_min, mean_rpm, stats.rpm_max)
     else:

@@ -310,18 +310,16 @@ def looks_like_clipped_vr(edges: Edges) -> bool:
     """True when a signal that switches like a Hall output shows its wheel gap the way a VR
     sensor does. A Hall output holds one level through the gap and its flanks alternate rising,
     falling, rising. A VR voltage swings slowly across the gap (the flux falls after the last
-    tooth and rises towards tooth 1); clipped into a square wave, it shows either a long level
-    of each polarity at every gap, or a slow swing there that breaks the alternation once per
-    revolution."""
+    tooth and rises towards tooth 1): clipped into a square wave it has a slow swing there, which
+    a flank detector does not see as a step, so the alternation breaks once per revolution."""
     if len(edges) < 40:
         return False
     score = long_levels(edges)
     total = score[1] + score[-1]
     if total < 2 or total > 0.2 * len(edges):
         return False  # no gaps, or long levels everywhere (a cam pattern, not a crank wheel)
-    both = min(score[1], score[-1]) > 0.35 * total
     breaks = int(np.count_nonzero(np.diff(edges.direction.astype(int)) == 0))
-    return both or breaks >= 0.5 * total
+    return breaks >= 0.5 * total
 
 
 # -- tooth-by-tooth decoding --------------------------------------------------------------------
