@@ -175,6 +175,12 @@ def plan_crank(
             raise DecodeError(_no_gap_reason(name, t, sample_rate))
         spec = guess.spec
         how = f"identified from the tooth periods (confidence {guess.confidence:.2f})"
+        if guess.confidence < MIN_CONFIDENCE:
+            raise DecodeError(
+                f"the tooth pattern on crank channel {name!r} does not settle on one wheel: the "
+                f"best guess, {spec.name}, fits only {guess.confidence:.0%} of the revolutions; "
+                "give the wheel with --wheel N-M, or record a cleaner signal"
+            )
         if guess.confidence < 0.8:
             findings.append(
                 Finding(
@@ -199,6 +205,11 @@ def plan_crank(
     return CrankPlan(channel, sensor, spec, direction, polarity, how, tuple(findings))
 
 
+def _rate_needed(teeth_per_s: float) -> float:
+    """The sample rate giving MIN_SAMPLES_PER_TOOTH, rounded up to a whole kHz."""
+    return math.ceil(MIN_SAMPLES_PER_TOOTH * teeth_per_s / 1000.0) * 1000.0
+
+
 def _too_few_samples(t: np.ndarray, sample_rate: float) -> str | None:
     """The sentence for a crank sampled too coarsely to decode, or None."""
     if len(t) < 3:
@@ -210,7 +221,7 @@ def _too_few_samples(t: np.ndarray, sample_rate: float) -> str | None:
     return (
         f"{sample_rate:g} Hz gives {spt:.1f} samples per crank tooth at the observed "
         f"{rate:.0f} teeth per second; at least {MIN_SAMPLES_PER_TOOTH:g} are needed: record "
-        f"at {MIN_SAMPLES_PER_TOOTH * rate:.0f} Hz or more"
+        f"at {_rate_needed(rate):g} Hz or more"
     )
 
 
@@ -284,6 +295,9 @@ class CrankStats:
 
 #: fewest tooth positions of a crank wheel toothcomb looks for on its own
 MIN_POSITIONS = 4
+#: least share of revolutions that must agree on a wheel identified without a hint
+# common practice, no source
+MIN_CONFIDENCE = 0.6
 
 
 def _pick_crank(
@@ -297,7 +311,7 @@ def _pick_crank(
     for c, e in edges.items():
         direction, _pol = crank_direction(e, looks[c].kind)
         g = identify(e.times[e.direction == direction])
-        if g is not None and g.spec.positions >= MIN_POSITIONS and g.confidence >= 0.5:
+        if g is not None and g.spec.positions >= MIN_POSITIONS and g.confidence >= MIN_CONFIDENCE:
             plausible.append((len(e), c, g.spec.name))
     if plausible:
         _n, c, name = max(plausible)
@@ -519,7 +533,7 @@ def _too_coarse(
                 f"crank channel {info.channels[c]!r}: {fs:g} Hz gives {fs / line:.1f} samples "
                 f"per tooth at the {line:.0f} teeth per second its spectrum shows; at least "
                 f"{MIN_SAMPLES_PER_TOOTH:g} are needed: record at "
-                f"{MIN_SAMPLES_PER_TOOTH * line:.0f} Hz or more"
+                f"{_rate_needed(line):g} Hz or more"
             ) from exc
 
 
@@ -543,7 +557,7 @@ def _result(
             f"crank channel {info.channels[plan.channel]!r}: {fs:g} Hz gives "
             f"{fs / teeth_per_s:.1f} samples per tooth at the observed {teeth_per_s:.0f} teeth "
             f"per second ({mean_rpm:.0f} rpm); at least {MIN_SAMPLES_PER_TOOTH:g} are needed: "
-            f"record at {MIN_SAMPLES_PER_TOOTH * teeth_per_s:.0f} Hz or more"
+            f"record at {_rate_needed(teeth_per_s):g} Hz or more"
         )
     spt = stats.min_pitch_period * fs
     if spt < MIN_SAMPLES_PER_TOOTH:

@@ -152,7 +152,7 @@ def test_too_few_samples_per_tooth_is_named(tmp_path):
         instrument=Instrument(kind="float", sample_rate=22050.0),
     )
     path, _ = make_capture(tmp_path, sc, fmt="h5")
-    with pytest.raises(DecodeError, match=r"22050 Hz gives 3\.7 samples per tooth at the 6000 "):
+    with pytest.raises(DecodeError, match=r"22050 Hz gives 3\.7 samples per tooth at the obs"):
         decode_capture(str(path), DecodeOptions(crank="crank", cams=("cam",), wheel="60-2"))
 
 

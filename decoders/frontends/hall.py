@@ -90,7 +90,7 @@ class HallFrontEnd:
         #: does not); 0 checks only right after the flank
         self.persist = max(0, int(persist))
         self._keep = (
-            self.window + self.plateau + self.max_run + 4 + 2 * self._half + self.persist
+            self.window + self.plateau + self.max_run + 4 + 2 * self._half + 2 * self.persist
         )
         self._last: tuple[float, int] | None = None  # (position, direction) of the last edge
         self._buf = np.empty(0)
@@ -197,7 +197,7 @@ class HallFrontEnd:
         P = self.persist
         complete = (e + w + half + P < n - 1) | final
         fresh = s + g >= self._done
-        enough = (s - W - w - half >= 0) & (e + w + P < n)
+        enough = (s - W - w - half - P >= 0) & (e + w + P < n)
         sel = complete & fresh & enough
         # runs that are complete but lack history (start of capture) are given up for good
         if np.any(complete & fresh):
@@ -221,8 +221,17 @@ class HallFrontEnd:
             return Edges.empty()
         if P > 0:
             # the new level must still hold later on (a spike's tail has gone by then)
-            later = level(buf[post_i + P])
-            held = (later - lo) * sign > 0.5 * step
+            # ... and the old one must have held before it (a spike's tail, seen as a step
+            # down, starts from a level that was not there a moment earlier): the samples (up
+            # to 64 spread over the span) stay on their side of the midpoint, but for a few
+            # (another spike may fall in the span)
+            mid0 = 0.5 * (lo + hi)[:, None]
+            reach = np.unique(np.linspace(1, P, min(P, 64)).round().astype(int))
+            after = buf[post_i[:, -1:] + reach[None, :]]
+            before = buf[pre_i[:, :1] - reach[None, :]]
+            held = (np.mean((after - mid0) * sign[:, None] > 0, axis=1) >= 0.8) & (
+                np.mean((before - mid0) * sign[:, None] < 0, axis=1) >= 0.8
+            )
             s, e, sign, lo, hi, step = s[held], e[held], sign[held], lo[held], hi[held], step[held]
             pre_i, post_i = pre_i[held], post_i[held]
             if len(s) == 0:

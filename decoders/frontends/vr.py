@@ -139,9 +139,7 @@ class VrFrontEnd:
             e = self._scan(self._tail, final=True)
             times, dirs, strength = list(e.times), list(e.direction), list(e.strength)
         # the last half-wave ends with the capture
-        self._close(
-            self._open_start, None, self._open_sign, self._open_peak, times, dirs, strength
-        )
+        self._close(self._open_start, None, self._open_sign, self._open_peak, times, dirs, strength)
         self._open_start = None
         self._tail = np.empty(0)
         return self._edges(times, dirs, strength)
@@ -176,10 +174,13 @@ class VrFrontEnd:
         if (
             width is not None
             and self._width > 0
-            and width < 0.25 * self._width
-            and peak > 2.0 * self.envelope
+            and (
+                width < 0.12 * self._width
+                or (width < 0.25 * self._width and peak > 2.0 * self.envelope)
+            )
         ):
-            # far shorter and taller than the teeth around it: an ignition spike, not a tooth
+            # far shorter (or shorter and taller) than the teeth around it: an ignition spike
+            # that crossed zero, not a tooth
             return
         if sign != self._state and start is not None:
             times.append(start)
