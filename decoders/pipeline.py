@@ -128,7 +128,7 @@ def crank_direction(
     if wheel is not None:
         scores = {d: _hint_score(times[d], wheel) for d in dirs}
     else:
-        guesses = {d: identify(times[d]) for d in dirs}
+        guesses = {d: identify(times[d], clean=False) for d in dirs}
         scores = {d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()}
     direction = max(dirs, key=lambda d: (scores[d][0] > 0, scores[d][1]))
     return direction, "normal" if direction == -1 else "reversed"

@@ -20,9 +20,11 @@ from __future__ import annotations
 import itertools
 import math
 import re
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.signal import savgol_filter
 
 from ..errors import UsageError
 from ..model import Edges
@@ -217,13 +219,71 @@ class WheelGuess:
     gap_ratio: float
 
 
-def identify(times: np.ndarray) -> WheelGuess | None:
+def local_pitch(times: np.ndarray, exclude: np.ndarray | None = None, half: int = 4) -> np.ndarray:
+    """Per interval, the local pitch period: a quadratic fitted over the ``half`` intervals on
+    each side (Savitzky-Golay), after the intervals marked in ``exclude`` (gaps) are replaced by
+    interpolation from their neighbours, so that a speed swing is followed.
+
+    >>> t = np.cumsum([0, 1, 1, 1, 3, 1, 1, 1.0])
+    >>> local_pitch(t, np.array([0, 0, 0, 1, 0, 0, 0], bool)).round(6).tolist()
+    [1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0]
+    """
+    T = np.diff(np.asarray(times, dtype=float))
+    n = len(T)
+    if n < 3:
+        return T.copy()
+    bad = np.zeros(n, dtype=bool) if exclude is None else exclude.copy()
+    # a running median first: intervals far from it (parts of a runt, a missed tooth) are
+    # left out as well, then a quadratic follows the speed through what remains
+    pad = np.concatenate((np.full(half, np.nan), np.where(bad, np.nan, T), np.full(half, np.nan)))
+    win = np.lib.stride_tricks.sliding_window_view(pad, 2 * half + 1)
+    with warnings.catch_warnings():  # all-nan windows give nan, handled below
+        warnings.simplefilter("ignore", RuntimeWarning)
+        med = np.nanmedian(win, axis=1)
+    med = np.where(np.isfinite(med), med, T)
+    bad |= np.abs(np.log(T / med)) > math.log(1.3)
+    v = T.copy()
+    if np.any(bad) and not np.all(bad):
+        keep = ~bad
+        v[bad] = np.interp(np.flatnonzero(bad), np.flatnonzero(keep), T[keep])
+    w = min(2 * half + 1, n if n % 2 else n - 1)
+    if w < 3:
+        return v
+    return savgol_filter(v, w, min(2, w - 1), mode="interp")
+
+
+def off_grid(times: np.ndarray) -> np.ndarray:
+    """Events that do not sit on the wheel's pitch grid: both intervals around them are far from
+    a whole number of pitches while together they make one (a runt pulse in a gap, a spike).
+
+    >>> t = np.cumsum([0, 1, 1, 1, 1, 0.4, 0.6, 1, 1, 1.0])
+    >>> np.flatnonzero(off_grid(t)).tolist()        # the event at 4.4
+    [5]
+    """
+    times = np.asarray(times, dtype=float)
+    out = np.zeros(len(times), dtype=bool)
+    if len(times) < 4:
+        return out
+    T = np.diff(times)
+    p = local_pitch(times, exclude=gap_ratios(times) > GAP_RATIO_MIN - 0.1)
+    x = T / p
+    frac = np.abs(x - np.rint(x))
+    both = (frac[:-1] > 0.25) & (frac[1:] > 0.25)
+    whole = np.abs((x[:-1] + x[1:]) - np.rint(x[:-1] + x[1:])) < 0.15
+    out[1:-1] = both & whole
+    return out
+
+
+def identify(times: np.ndarray, clean: bool = True) -> WheelGuess | None:
     """Identify N and M from event times of one direction (tooth centres or leading flanks).
 
-    Intervals that span whole extra pitches are sorted by how many teeth they miss; the gap is
-    the largest such class that comes back once per revolution (a damaged tooth elsewhere
-    shows as a smaller class). N is the number of pitches from one gap to the next, counting
-    every interval by the pitches it spans. Returns None when no class recurs.
+    Events off the pitch grid (runts) are set aside first. Intervals that span whole extra
+    pitches are gap candidates; the gap is the largest class of them (by teeth missed) that
+    comes back once per revolution, so a damaged tooth elsewhere shows as a smaller class. N is
+    the number of pitches from one gap to the next (the sum of every interval over its local
+    pitch period, rounded), and M is N less the teeth seen and the teeth missing elsewhere.
+    Returns None when no class recurs. ``clean=False`` keeps off-grid events (to judge which
+    crossing direction of a VR signal shows the gap as it is).
 
     >>> teeth = [k * 6.0 for k in range(58)]                       # a 60-2 wheel, 6 deg pitch
     >>> t = np.array([r * 360 + a for r in range(4) for a in teeth]) / 4800.0   # 800 rpm
@@ -232,14 +292,19 @@ def identify(times: np.ndarray) -> WheelGuess | None:
     ('60-2', 1.0, 3)
     """
     times = np.asarray(times, dtype=float)
+    if clean:
+        times = times[~off_grid(times)]
     cand = gap_candidates(times)
     if len(cand) < 2:
         return None
     m_all, _ = gap_fit(times)
+    is_cand = np.zeros(len(times) - 1, dtype=bool)
+    is_cand[cand] = True
+    T = np.diff(times)
+    p = local_pitch(times, exclude=is_cand)
     ratios = gap_ratios(times)
-    best: WheelGuess | None = None
-    for m in sorted(set(m_all[cand].tolist()), reverse=True):
-        idx = cand[m_all[cand] == m]
+    for m_min in sorted(set(m_all[cand].tolist()), reverse=True):
+        idx = cand[m_all[cand] >= m_min]
         if len(idx) < 2:
             continue
         spacing = np.diff(idx)
@@ -248,27 +313,24 @@ def identify(times: np.ndarray) -> WheelGuess | None:
         share = float(np.max(counts)) / len(spacing)
         if share < 0.5:
             continue
-        # pitches from one gap to the next: every interval counted by the pitches it spans
-        pitches = []
+        found = []
         for a, b in itertools.pairwise(idx):
             if b - a != k:
                 continue
-            inner = np.arange(a + 1, b)
-            extra = m_all[inner]
-            pitches.append(int(len(inner) + np.sum(extra) + (m + 1)))
-        if not pitches:
+            span = np.arange(a + 1, b + 1)  # the intervals after one gap up to the next one
+            n = int(np.rint(np.sum(T[span] / p[span])))
+            elsewhere = span[is_cand[span] & (span != b)]
+            missing = int(np.sum(m_all[elsewhere]))
+            found.append((n, n - k - missing))
+        if not found:
             continue
-        pv, pc = np.unique(pitches, return_counts=True)
-        n = int(pv[np.argmax(pc)])
-        if not (3 <= n <= 360) or m >= n - 1:
+        keys, cnt = np.unique(np.array(found), axis=0, return_counts=True)
+        n, m = (int(v) for v in keys[np.argmax(cnt)])
+        if not (3 <= n <= 360) or not (1 <= m <= 3) or m >= n - 1:
             continue
-        conf = share * float(np.max(pc)) / len(pitches)
-        guess = WheelGuess(
-            MissingToothSpec(n, m), conf, len(idx), float(np.median(ratios[idx]))
-        )
-        if best is None or guess.confidence > best.confidence + 0.2:
-            best = guess
-    return best
+        conf = share * float(np.max(cnt)) / len(found)
+        return WheelGuess(MissingToothSpec(n, m), conf, len(idx), float(np.median(ratios[idx])))
+    return None
 
 
 def long_levels(edges: Edges) -> dict[int, int]:
