@@ -509,6 +509,19 @@ def decode_capture(
         jitter.flush()
         for c, ev in locator.finish().items():
             state[c].events.append(ev)
+        # steps on the crank channel that did not hold: each short pulse gives two
+        pulses = getattr(frontends[crank], "rejected", 0) // 2
+        if pulses:
+            stats.extra += pulses
+            stats.findings.append(
+                Finding(
+                    "info",
+                    "extra-edge",
+                    f"{pulses} short pulse(s) on crank channel {info.channels[crank]!r} did not "
+                    "hold long enough to be teeth (runt pulses or ignition spikes) and were "
+                    "ignored",
+                )
+            )
 
     refs = stats.reference_times
     if len(refs) == 0:

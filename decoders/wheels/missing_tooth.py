@@ -38,6 +38,8 @@ GAP_RATIO_MIN = 1.6
 #: largest |log(measured / predicted)| accepted for an interval before sync is called lost
 # common practice, no source: about +-45 % of the predicted interval
 ACCEPT_LOG = math.log(1.45)
+#: accepted intervals the speed prediction is fitted to
+HISTORY = 3
 #: cost added for calling an edge "not a tooth" or a tooth "missing" (log units)
 EXTRA_PENALTY = 0.12
 MISSING_PENALTY = 0.15
@@ -425,6 +427,9 @@ class ToothTracker:
         self._angle = 0.0
         self._p_last = 0.0
         self._p_prev = 0.0
+        #: the last accepted intervals as (start, end) in pitches from the run's first
+        #: reference event, and their durations: the speed prediction follows them
+        self._hist: list[tuple[float, float, float]] = []
         self._run = -1
         self._extra = self._missing = self._losses = 0
 
@@ -474,6 +479,8 @@ class ToothTracker:
                 self._angle = 0.0
                 T = np.diff(t[g - 1 : g + 3])
                 self._p_last = self._p_prev = float(0.5 * (T[0] + T[2]))
+                gap = spec.missing + 1.0
+                self._hist = [(-gap - 1.0, -gap, float(T[0])), (-gap, 0.0, float(T[1]))]
                 out.tooth(t[i], 0.0, self._run, 1, 0)
                 out.refs.append(float(t[i]))
                 continue
@@ -499,6 +506,12 @@ class ToothTracker:
                         self._angle += 360.0
                         self._p_prev = float(q[-2]) if K > 1 else float(q[-1])
                         self._p_last = float(q[-1])
+                        x = np.concatenate(([0.0], np.cumsum(steps)))
+                        x += self._angle / spec.pitch_deg - spec.positions
+                        self._hist = [
+                            (float(x[j]), float(x[j + 1]), float(T[j]))
+                            for j in range(max(0, K - HISTORY), K)
+                        ]
                         i += K
                         continue
 
@@ -515,25 +528,52 @@ class ToothTracker:
         self._i = i - drop
         return out.track(spec.pitch_deg, self)
 
+    def _expected(self, x0: float, c: float, p_pred: float) -> float:
+        """Expected duration of the next ``c`` pitches from pitch position ``x0``: the integral
+        of the quadratic fitted to the last few pitch periods (so fast, uneven speed changes
+        such as cranking swings are followed), kept within reach of the last period."""
+        if len(self._hist) < 3:
+            return p_pred * c
+        xs = np.array([0.5 * (a + b) for a, b, _ in self._hist])
+        ps = np.array([d / (b - a) for a, b, d in self._hist])
+        try:
+            k2, k1, k0 = np.polyfit(xs - x0, ps, 2)
+        except (np.linalg.LinAlgError, ValueError):
+            return p_pred * c
+        integral = k0 * c + k1 * c * c / 2.0 + k2 * c**3 / 3.0
+        lo, hi = 0.4 * self._p_last * c, 2.5 * self._p_last * c
+        if not math.isfinite(integral):
+            return p_pred * c
+        return min(max(integral, lo), hi)
+
     def _step(self, t: np.ndarray, i: int, n: int, out: _Out) -> bool:
         """One tooth-by-tooth decision from the tooth at ``i``; False when sync is lost."""
         spec = self.spec
         K = spec.teeth
         ratio = min(max(self._p_last / self._p_prev, 0.8), 1.25) if self._p_prev > 0 else 1.0
         p_pred = self._p_last * ratio
+        x0 = self._angle / spec.pitch_deg
         best = None  # (cost, err, skip, adv, pitches, interval)
         for skip in (0, 1):
             if i + 1 + skip >= n:
                 break
             T = t[i + 1 + skip] - t[i]
+            if T <= 0:
+                continue
             q = T / p_pred
             for adv in range(1, K + 1):
                 c = spec.span(self._tooth, adv)
                 if c > q * 1.6 + 1:
                     break
-                if adv > 1 and abs(q - c) > 0.3:
+                # two predictions: the quadratic through the last periods follows fast swings,
+                # the ratio of the last two is steadier on a noisy signal; the closer one counts
+                expect = min(
+                    (self._expected(x0, c, p_pred), p_pred * c), key=lambda e: abs(math.log(T / e))
+                )
+                qc = T / (expect / c)  # pitches, at the predicted speed through the span
+                if adv > 1 and abs(qc - c) > 0.3:
                     continue
-                err = abs(math.log(q / c))
+                err = abs(math.log(T / expect))
                 cost = err + skip * EXTRA_PENALTY + (adv - 1) * MISSING_PENALTY
                 if best is None or cost < best[0]:
                     best = (cost, err, skip, adv, c, T)
@@ -577,6 +617,7 @@ class ToothTracker:
         self._tooth = (self._tooth - 1 + adv) % K + 1
         self._angle += c * spec.pitch_deg
         self._p_prev, self._p_last = self._p_last, float(T / c)
+        self._hist = [*self._hist[-(HISTORY - 1) :], (x0, x0 + c, float(T))]
         out.tooth(t[i], self._angle, self._run, self._tooth, c)
         if self._tooth == 1:
             out.refs.append(float(t[i]))
