@@ -509,8 +509,10 @@ def decode_capture(
         jitter.flush()
         for c, ev in locator.finish().items():
             state[c].events.append(ev)
-        # steps on the crank channel that did not hold: each short pulse gives two
-        pulses = getattr(frontends[crank], "rejected", 0) // 2
+        # steps on the crank channel that did not hold: a short pulse gives at most one of
+        # each direction
+        rejected = getattr(frontends[crank], "rejected", {})
+        pulses = max(rejected.values(), default=0)
         if pulses:
             stats.extra += pulses
             stats.findings.append(

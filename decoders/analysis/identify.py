@@ -127,9 +127,11 @@ def look_at_channel(
     fe = HallFrontEnd(sample_rate, levels, **opts)
     edges = Edges.concat([fe.process(probe, 0), fe.finish()])
     rate = len(edges) / duration if duration > 0 else 0.0
-    sharp = _sharpness(probe, edges, sample_rate)
+    # judge sharpness on the steps that carry the signal's swing, not on noise
+    strong = edges.select(edges.strength >= 0.4 * span)
+    sharp = _sharpness(probe, strong, sample_rate)
     if hint is None:
-        if len(edges) < 2 or not math.isfinite(sharp):
+        if len(strong) < 2 or not math.isfinite(sharp):
             kind, conf = "vr", 0.5
             why = "no sharp steps: treated as a VR (analog) signal"
         elif sharp >= SHARP_HALL and looks_like_clipped_vr(edges):

@@ -93,8 +93,9 @@ class HallFrontEnd:
             self.window + self.plateau + self.max_run + 4 + 2 * self._half + 2 * self.persist
         )
         self._last: tuple[float, int] | None = None  # (position, direction) of the last edge
-        #: flank candidates that looked like steps but did not hold (spikes, runt pulses)
-        self.rejected = 0
+        #: flank candidates that looked like steps but did not hold (spikes, runt pulses), by
+        #: direction (+1 rising, -1 falling)
+        self.rejected = {1: 0, -1: 0}
         self._buf = np.empty(0)
         self._buf_start = 0
         self._done = 0  # runs starting before this global index have been handled
@@ -234,7 +235,8 @@ class HallFrontEnd:
             held = (np.mean((after - mid0) * sign[:, None] > 0, axis=1) >= 0.8) & (
                 np.mean((before - mid0) * sign[:, None] < 0, axis=1) >= 0.8
             )
-            self.rejected += int(np.count_nonzero(~held))
+            for d in (1, -1):
+                self.rejected[d] += int(np.count_nonzero(~held & (sign == d)))
             s, e, sign, lo, hi, step = s[held], e[held], sign[held], lo[held], hi[held], step[held]
             pre_i, post_i = pre_i[held], post_i[held]
             if len(s) == 0:

@@ -382,7 +382,12 @@ def looks_like_clipped_vr(edges: Edges) -> bool:
     total = score[1] + score[-1]
     if total < 2 or total > 0.2 * len(edges):
         return False  # no gaps, or long levels everywhere (a cam pattern, not a crank wheel)
-    breaks = int(np.count_nonzero(np.diff(edges.direction.astype(int)) == 0))
+    # breaks in the alternation that span a long stretch: the slow swing across the gap (a
+    # runt pulse whose first flank was too short to count breaks it over a short stretch)
+    same = np.diff(edges.direction.astype(int)) == 0
+    dt = np.diff(edges.times)
+    long = dt > 1.8 * np.median(dt)
+    breaks = int(np.count_nonzero(same & long))
     return breaks >= 0.5 * total
 
 
