@@ -33,7 +33,7 @@ from .analysis.cams import (
     vr_centre_direction,
 )
 from .analysis.identify import ChannelLook, look_at_channel
-from .analysis.jitter import CrankJitter
+from .analysis.jitter import CrankJitter, tooth_offsets
 from .analysis.timeline import CamLocator
 from .errors import DecodeError, UsageError
 from .levels import check_finite, measure_levels
@@ -46,6 +46,7 @@ from .wheels.base import ToothTrack
 from .wheels.missing_tooth import (
     MissingToothSpec,
     ToothTracker,
+    decode_teeth,
     gap_candidates,
     gap_fit,
     gap_ratios,
@@ -467,14 +468,16 @@ def decode_capture(
                 centre = vr_centre_direction(head[c])
                 state[c].direction_only = centre
                 state[c].leading = centre
+        offsets, offset_findings = _tooth_offsets(head[crank], plan, info.channels[crank])
         del head
 
         # -- the whole capture, block by block --
         frontends = {c: _frontend(looks[c], fs, levels[c]) for c in [crank, *cams] if c in live}
-        tracker = ToothTracker(plan.spec)
+        tracker = ToothTracker(plan.spec, offsets)
         locator = CamLocator(max_pitches=plan.spec.missing + 1)
         jitter = CrankJitter(plan.spec.pitch_deg)
         stats = CrankStats(info.duration_s)
+        stats.findings.extend(offset_findings)
 
         def take(edges: dict[int, Edges], teeth: ToothTrack) -> None:
             for c, e in edges.items():
@@ -533,6 +536,39 @@ def decode_capture(
             "wheel (--wheel) and the channel (--crank)"
         )
     return _result(info, plan, stats, jitter, cams, state, locator, looks, choices, fs)
+
+
+#: a tooth is placed at its measured angle when it sits this far (in pitches) from its nominal
+#: one, and that far beyond four standard errors
+# common practice, no source
+TOOTH_OFFSET_MIN = 0.05
+
+
+def _tooth_offsets(
+    edges: Edges, plan: CrankPlan, name: str
+) -> tuple[dict[int, float], list[Finding]]:
+    """Teeth that sit away from their nominal angle (a wide tooth, a bent one), measured on the
+    first seconds; angles between teeth are then interpolated from where they really are."""
+    track = decode_teeth(edges.times[edges.direction == plan.direction], plan.spec)
+    found = tooth_offsets(track)
+    pitch = plan.spec.pitch_deg
+    out: dict[int, float] = {}
+    findings: list[Finding] = []
+    for tooth, (mean, sem, n) in sorted(found.items()):
+        if tooth == 1 or n < 3:
+            continue
+        if abs(mean) > TOOTH_OFFSET_MIN * pitch and abs(mean) > 4.0 * sem:
+            out[tooth] = mean
+            findings.append(
+                Finding(
+                    "info",
+                    "tooth-offset",
+                    f"crank tooth {tooth} on {name!r} sits {mean:+.2f} deg from its nominal "
+                    f"position (a wide, narrow or bent tooth, {n} revolutions); angles use its "
+                    "measured position",
+                )
+            )
+    return out, findings
 
 
 def _too_coarse(

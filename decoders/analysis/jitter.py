@@ -268,3 +268,45 @@ def edge_jitter(
     tie_deg = angles - trend
     speed = np.asarray(deg_per_s, dtype=float)
     return jitter_from_tie(tie_deg / speed, speed, rms_scale=float(scale), detrend=how)
+
+
+def tooth_offsets(
+    track: ToothTrack, half_window: int | None = None
+) -> dict[int, tuple[float, float, int]]:
+    """How far each tooth of the wheel sits from its nominal position, from the teeth of a
+    decoded stretch: per tooth number, (mean offset in deg CA, its standard error, count).
+
+    The ideal time of every tooth is the local cubic through its neighbours (as for jitter); a
+    tooth that is wider, narrower or bent shows the same time error revolution after revolution,
+    which, at the local speed, is its offset from the nominal angle (+ = later).
+    """
+    pitch = track.pitch_deg
+    positions = round(360.0 / pitch)
+    half = half_window if half_window is not None else max(3, round(positions / 12))
+    w = 2 * half + 1
+    coeffs = savgol_coeffs(w, 3, use="dot")
+    dcoef = savgol_coeffs(w, 3, deriv=1, use="dot")
+    per: dict[int, list[float]] = {}
+    for idx in track.runs:
+        g = np.rint(track.angles[idx] / pitch).astype(int)
+        t = track.times[idx]
+        if len(g) < 4 or g[-1] - g[0] + 1 < w:
+            continue
+        full = np.arange(g[0], g[-1] + 1)
+        k = np.clip(np.searchsorted(g, full, side="right") - 1, 0, len(g) - 2)
+        tf, _ = local_cubic(full.astype(float), g.astype(float), t, k)
+        ideal = np.correlate(tf, coeffs, "valid")
+        deriv = np.correlate(tf, dcoef, "valid")
+        centre = full[half : len(full) - half]
+        seen = np.isin(g, centre)
+        j = g[seen] - centre[0]
+        # leave-one-out: the tooth's own weight in the fit would pull its residual towards 0
+        deg = (t[seen] - ideal[j]) * pitch / deriv[j] / (1.0 - coeffs[half])
+        for tooth, d in zip(track.tooth[idx][seen], deg, strict=True):
+            per.setdefault(int(tooth), []).append(float(d))
+    out = {}
+    for tooth, v in per.items():
+        a = np.asarray(v)
+        sem = float(a.std(ddof=1) / np.sqrt(len(a))) if len(a) > 1 else float("inf")
+        out[tooth] = (float(a.mean()), sem, len(a))
+    return out

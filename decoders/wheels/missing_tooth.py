@@ -423,8 +423,13 @@ class ToothTracker:
     True
     """
 
-    def __init__(self, spec: MissingToothSpec) -> None:
+    def __init__(self, spec: MissingToothSpec, offsets: dict[int, float] | None = None) -> None:
         self.spec = spec
+        #: measured offset (deg) of teeth that sit away from their nominal angle
+        self._offset = np.zeros(spec.teeth + 1)
+        for tooth, off in (offsets or {}).items():
+            if 2 <= tooth <= spec.teeth:  # tooth 1 is the reference event by definition
+                self._offset[tooth] = off
         self._t = np.empty(0)  # events not yet behind us
         self._i = 0  # local index: the last accepted tooth (synced) or where to search (not)
         self._synced = False
@@ -531,7 +536,22 @@ class ToothTracker:
         drop = max(0, min(i, n) - 2)
         self._t = t[drop:]
         self._i = i - drop
-        return out.track(spec.pitch_deg, self)
+        track = out.track(spec.pitch_deg, self)
+        if np.any(self._offset) and len(track):
+            track = ToothTrack(
+                times=track.times,
+                angles=track.angles + self._offset[track.tooth],
+                run=track.run,
+                tooth=track.tooth,
+                pitches=track.pitches,
+                reference_times=track.reference_times,
+                pitch_deg=track.pitch_deg,
+                extra=track.extra,
+                missing=track.missing,
+                sync_losses=track.sync_losses,
+                findings=track.findings,
+            )
+        return track
 
     def _expected(self, x0: float, c: float, p_pred: float) -> float:
         """Expected duration of the next ``c`` pitches from pitch position ``x0``: the integral
