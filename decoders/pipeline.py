@@ -49,9 +49,9 @@ from .wheels.missing_tooth import (
     decode_teeth,
     gap_candidates,
     gap_fit,
-    gap_ratios,
     identify,
     leading_direction,
+    split_gaps,
 )
 
 #: progress callback: (what, done, total)
@@ -98,17 +98,17 @@ def _wheel_from_hint(text: str) -> MissingToothSpec:
     )
 
 
-def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, float]:
-    """How well one direction's events show ``spec``'s gap: (gaps of M missing teeth, median
-    ratio of those gaps to their neighbours)."""
+def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, int, float]:
+    """How well one direction's events show ``spec``'s gap: (whole gaps, gaps split by a runt
+    edge, minus the median misfit of the whole ones); larger is better, in that order."""
+    whole = np.empty(0, dtype=int)
     cand = gap_candidates(times)
-    if len(cand) == 0:
-        return 0, 0.0
-    m, _ = gap_fit(times)
-    good = cand[m[cand] == spec.missing]
-    if len(good) == 0:
-        return 0, 0.0
-    return len(good), float(np.median(gap_ratios(times)[good]))
+    m, err = gap_fit(times)
+    if len(cand):
+        whole = cand[m[cand] == spec.missing]
+    split = split_gaps(np.asarray(times, float), 1, len(times) - 4, spec.missing)
+    fit = -float(np.median(err[whole])) if len(whole) else -1.0
+    return len(whole), len(split), fit
 
 
 def crank_direction(
@@ -127,10 +127,11 @@ def crank_direction(
     dirs = (1, -1)
     times = {d: edges.times[edges.direction == d] for d in dirs}
     if wheel is not None:
-        scores = {d: _hint_score(times[d], wheel) for d in dirs}
-    else:
-        guesses = {d: identify(times[d], clean=False) for d in dirs}
-        scores = {d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()}
+        hint = {d: _hint_score(times[d], wheel) for d in dirs}
+        direction = max(dirs, key=lambda d: (hint[d][0], hint[d][1], hint[d][2]))
+        return direction, "normal" if direction == -1 else "reversed"
+    guesses = {d: identify(times[d], clean=False) for d in dirs}
+    scores = {d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()}
     direction = max(dirs, key=lambda d: (scores[d][0] > 0, scores[d][1]))
     return direction, "normal" if direction == -1 else "reversed"
 
@@ -302,16 +303,26 @@ MIN_CONFIDENCE = 0.6
 
 
 def _pick_crank(
-    edges: dict[int, Edges], looks: dict[int, ChannelLook], info: CaptureInfo
+    edges: dict[int, Edges],
+    looks: dict[int, ChannelLook],
+    info: CaptureInfo,
+    wheel: MissingToothSpec | None = None,
 ) -> tuple[int, str]:
     """The crank channel: among the channels whose events show a plausible missing-tooth wheel
-    (at least four positions, most revolutions agreeing), the one with the most teeth per
-    second. A cam pattern can look like a small wheel, but it never has the crank's tooth rate.
+    (at least four positions, most revolutions agreeing; or the wheel given), the one with the
+    most teeth per second. A cam pattern can look like a small wheel, but it never has the
+    crank's tooth rate.
     """
     plausible: list[tuple[int, int, str]] = []
     for c, e in edges.items():
-        direction, _pol = crank_direction(e, looks[c].kind)
-        g = identify(e.times[e.direction == direction])
+        direction, _pol = crank_direction(e, looks[c].kind, wheel)
+        t = e.times[e.direction == direction]
+        if wheel is not None:
+            whole, split, _fit = _hint_score(t, wheel)
+            if whole + split >= 2:
+                plausible.append((len(e), c, wheel.name))
+            continue
+        g = identify(t)
         if g is not None and g.spec.positions >= MIN_POSITIONS and g.confidence >= MIN_CONFIDENCE:
             plausible.append((len(e), c, g.spec.name))
     if plausible:
@@ -445,7 +456,7 @@ def decode_capture(
             head, whole = _stream_prefix(src, live, looks, levels, seconds, opts.block_size)
             try:
                 if crank is None:
-                    c_pick, why = _pick_crank(head, looks, info)
+                    c_pick, why = _pick_crank(head, looks, info, wheel)
                 else:
                     c_pick, why = crank, "given by the user"
                 name = info.channels[c_pick]

@@ -465,32 +465,47 @@ class ToothTracker:
         i = self._i
         while i < n - 1:
             if not self._synced:
-                # a gap interval g needs t[g - 1] .. t[g + 2] to be judged
+                # a gap interval g is judged with two intervals on each side: t[g - 2] ..
+                # t[g + 3] (at the very end of the capture, with what there is)
                 lo = max(i, 1)
-                hi = n - 3
+                hi = n - 3 if final else n - 4
                 if hi < lo:
                     break
-                # (two more intervals on each side let the gap fit follow fast speed changes)
                 first = max(lo - 2, 0)
-                seg = t[first : hi + 5]
+                seg = t[first : hi + 4]
                 cand = gap_candidates(seg) + first
                 cand = cand[(cand >= lo) & (cand <= hi)]
                 if len(cand):
                     m_fit, _ = gap_fit(seg)
                     cand = cand[m_fit[cand - first] == spec.missing]
-                if len(cand) == 0:
+                split = split_gaps(t, lo, hi, spec.missing)
+                if len(cand) == 0 and len(split) == 0:
                     i = max(i, hi + 1)
                     break
-                g = int(cand[0])
+                g = int(min(cand.min() if len(cand) else n, split.min() if len(split) else n))
+                runt = len(cand) == 0 or g not in set(cand.tolist())
                 i = g + 1  # tooth 1
                 self._run += 1
                 self._synced = True
                 self._tooth = 1
                 self._angle = 0.0
-                T = np.diff(t[g - 1 : g + 3])
-                self._p_last = self._p_prev = float(0.5 * (T[0] + T[2]))
+                gap_t = t[g + 1] - t[g - 1] if runt else t[g + 1] - t[g]
+                before = t[g - 1] - t[g - 2] if runt else t[g] - t[g - 1]
+                after = t[g + 2] - t[g + 1]
+                self._p_last = self._p_prev = float(0.5 * (before + after))
                 gap = spec.missing + 1.0
-                self._hist = [(-gap - 1.0, -gap, float(T[0])), (-gap, 0.0, float(T[1]))]
+                self._hist = [(-gap - 1.0, -gap, float(before)), (-gap, 0.0, float(gap_t))]
+                if runt:
+                    self._extra += 1
+                    out.findings.append(
+                        Finding(
+                            "info",
+                            "extra-edge",
+                            f"an edge at {t[g]:.4f} s inside the crank gap is not a tooth (a runt "
+                            "pulse) and was ignored",
+                            float(t[g]),
+                        )
+                    )
                 out.tooth(t[i], 0.0, self._run, 1, 0)
                 out.refs.append(float(t[i]))
                 continue
@@ -648,6 +663,24 @@ class ToothTracker:
             out.refs.append(float(t[i]))
         out.last_i = i
         return True
+
+
+def split_gaps(t: np.ndarray, lo: int, hi: int, missing: int) -> np.ndarray:
+    """Intervals g in [lo, hi] that, with the interval before them, make up the gap of a wheel
+    with ``missing`` teeth missing, split by an edge that is not a tooth (a runt pulse): the
+    two add up to missing + 1 pitches, and at least one of them is clearly not a single pitch.
+    """
+    g = np.arange(max(lo, 3), hi + 1)
+    g = g[g + 2 <= len(t) - 2]
+    if len(g) == 0:
+        return g
+    T = np.diff(t)
+    p = np.median(np.vstack([T[g - 3], T[g - 2], T[g + 1], T[g + 2]]), axis=0)
+    a, b = T[g - 1], T[g]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        whole = np.abs(np.log((a + b) / ((missing + 1) * p))) < math.log(1.1)
+        odd = (np.maximum(a, b) > 1.4 * p) & (np.minimum(a, b) > 0.2 * p)
+    return g[whole & odd]
 
 
 class _Out:
