@@ -128,7 +128,7 @@ def crank_direction(
     times = {d: edges.times[edges.direction == d] for d in dirs}
     if wheel is not None:
         hint = {d: _hint_score(times[d], wheel) for d in dirs}
-        direction = max(dirs, key=lambda d: (hint[d][0], hint[d][1], hint[d][2]))
+        direction = max(dirs, key=lambda d: (hint[d][0] > 0, hint[d][2], hint[d][1]))
         return direction, "normal" if direction == -1 else "reversed"
     guesses = {d: identify(times[d], clean=False) for d in dirs}
     scores = {d: (1, g.gap_ratio) if g is not None else (0, 0.0) for d, g in guesses.items()}
