@@ -561,14 +561,37 @@ def _tooth_offsets(
     """Teeth that sit away from their nominal angle (a wide tooth, a bent one), measured on the
     first seconds; angles between teeth are then interpolated from where they really are."""
     track = decode_teeth(edges.times[edges.direction == plan.direction], plan.spec)
-    found = tooth_offsets(track)
     pitch = plan.spec.pitch_deg
+    K = plan.spec.teeth
+    # find the worst tooth, take it out of the fits, look again: at most two teeth
+    picked: set[int] = set()
+    found = tooth_offsets(track)
+    for _ in range(2):
+        cands = [
+            (abs(mean), tooth)
+            for tooth, (mean, sem, n) in found.items()
+            if tooth != 1
+            and tooth not in picked
+            and n >= 3
+            and abs(mean) > TOOTH_OFFSET_MIN * pitch
+            and abs(mean) > 4.0 * sem
+        ]
+        if not cands:
+            break
+        picked.add(max(cands)[1])
+        found = tooth_offsets(track, exclude=frozenset(picked))
+
+    def off(k: int) -> float:
+        return abs(found.get((k - 1) % K + 1, (0.0, 0.0, 0))[0])
+
     out: dict[int, float] = {}
     findings: list[Finding] = []
-    for tooth, (mean, sem, n) in sorted(found.items()):
-        if tooth == 1 or n < 3:
-            continue
-        if abs(mean) > TOOTH_OFFSET_MIN * pitch and abs(mean) > 4.0 * sem:
+    for tooth in sorted(picked):
+        mean, _sem, n = found[tooth]
+        # a tooth out of place stands alone; a smooth pattern over many teeth is speed ripple
+        # the local fit did not follow, not the wheel
+        others = max(off(tooth - 2), off(tooth - 1), off(tooth + 1), off(tooth + 2))
+        if abs(mean) > TOOTH_OFFSET_MIN * pitch and abs(mean) > 3.0 * others:
             out[tooth] = mean
             findings.append(
                 Finding(
@@ -579,6 +602,8 @@ def _tooth_offsets(
                     "measured position",
                 )
             )
+    if len(out) > 2:  # not single teeth: leave the wheel as drawn
+        return {}, []
     return out, findings
 
 

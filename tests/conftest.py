@@ -100,3 +100,98 @@ def capture(tmp_path):
         return make_capture(tmp_path, scenario, fmt)
 
     return _make
+
+
+def finding_codes(result: DecodeResult) -> set[str]:
+    """Codes of every finding of a decode (capture, crank and cams)."""
+    return {f.code for f in result.all_findings}
+
+
+def local_rpm(truth: dict, times: np.ndarray) -> np.ndarray:
+    """True engine speed at ``times`` (s), interpolated from the simulator's per-tooth speeds."""
+    te = truth["crank"]["tooth_events"]
+    return np.interp(np.asarray(times, dtype=float), te["centre_s"], te["rpm"])
+
+
+def decodable_references(truth: dict) -> np.ndarray:
+    """True reference events whose gap lies wholly inside the capture: at least two tooth
+    centres before the event and three at or after it (one interval on each side of the gap,
+    and the teeth that confirm it)."""
+    centres = np.asarray(truth["crank"]["tooth_events"]["centre_s"])
+    refs = np.asarray(truth["crank"]["reference_times_s"])
+    before = np.searchsorted(centres, refs - 1e-7)
+    after = len(centres) - before
+    return refs[(before >= 2) & (after >= 3)]
+
+
+def reference_check(result: DecodeResult, truth: dict) -> tuple[int, int, int, np.ndarray]:
+    """Compare the decoded reference events with the truth.
+
+    Returns (decodable true references, of them found within 0.3 pitch, decoded references
+    that match no true one, timing errors of the found ones in deg CA at the local speed).
+    """
+    mine = np.asarray(result.crank.reference_times_s, dtype=float)
+    every = np.asarray(truth["crank"]["reference_times_s"], dtype=float)
+    want = decodable_references(truth)
+    pitch = truth["crank"]["pitch_deg"]
+    errs = []
+    for t in want:
+        if len(mine) == 0:
+            break
+        i = int(np.argmin(np.abs(mine - t)))
+        deg = abs(mine[i] - t) * 6.0 * float(local_rpm(truth, np.array([t]))[0])
+        if deg < 0.3 * pitch:
+            errs.append(deg)
+    invented = 0
+    for t in mine:
+        i = int(np.argmin(np.abs(every - t))) if len(every) else -1
+        deg = abs(every[i] - t) * 6.0 * float(local_rpm(truth, np.array([t]))[0]) if i >= 0 else 1e9
+        if deg >= 0.3 * pitch:
+            invented += 1
+    return len(want), len(errs), invented, np.array(errs)
+
+
+def cam_event_check(result: DecodeResult, truth: dict, cam: int = 0) -> tuple[int, int, np.ndarray]:
+    """Compare every decoded event of cam ``cam`` with the true events after the first decodable
+    reference.
+
+    Returns (true events, decoded events that match no true event of the same direction within
+    2 deg CA, |decoded - true| angle of each matched true event in deg CA, nan where a true event
+    was not found). True events after the second-to-last crank tooth are left out: the crank
+    angle there is not bracketed by teeth.
+    """
+    refs = decodable_references(truth)
+    start = refs[0] if len(refs) else np.inf
+    centres = truth["crank"]["tooth_events"]["centre_s"]
+    end = centres[-2] if len(centres) >= 2 else -np.inf
+    name = result_channel(result, truth, truth["cams"][cam]["channel"])
+    mine = next(c for c in result.cams if c.channel == name)
+    got = [(t, a, e.direction) for e in mine.edges for t, a in e.events]
+    true = [
+        (ev["time_s"], ev["angle_after_ref_deg"], ev["direction"])
+        for ev in truth["cams"][cam]["events"]
+        if start < ev["time_s"] < end
+    ]
+
+    def deg_apart(t0: float, t1: float) -> float:
+        return abs(t0 - t1) * 6.0 * float(local_rpm(truth, np.array([t0]))[0])
+
+    errs = []
+    for t, a, d in true:
+        near = [(deg_apart(t, tg), ag) for tg, ag, dg in got if dg == d]
+        best = min(near, default=None)
+        errs.append(abs(circ_diff(best[1], a)) if best and best[0] < 2.0 else np.nan)
+    spurious = 0
+    for tg, _ag, dg in got:
+        near = [deg_apart(tg, t) for t, _a, d in truth_all_events(truth, cam) if d == dg]
+        if not near or min(near) >= 2.0:
+            spurious += 1
+    return len(true), spurious, np.array(errs)
+
+
+def truth_all_events(truth: dict, cam: int = 0) -> list[tuple[float, float, str]]:
+    """(time_s, angle after the reference, direction) of every true event of cam ``cam``."""
+    return [
+        (ev["time_s"], ev["angle_after_ref_deg"], ev["direction"])
+        for ev in truth["cams"][cam]["events"]
+    ]

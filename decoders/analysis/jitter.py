@@ -271,14 +271,16 @@ def edge_jitter(
 
 
 def tooth_offsets(
-    track: ToothTrack, half_window: int | None = None
+    track: ToothTrack, half_window: int | None = None, exclude: frozenset[int] = frozenset()
 ) -> dict[int, tuple[float, float, int]]:
     """How far each tooth of the wheel sits from its nominal position, from the teeth of a
     decoded stretch: per tooth number, (mean offset in deg CA, its standard error, count).
 
     The ideal time of every tooth is the local cubic through its neighbours (as for jitter); a
     tooth that is wider, narrower or bent shows the same time error revolution after revolution,
-    which, at the local speed, is its offset from the nominal angle (+ = later).
+    which, at the local speed, is its offset from the nominal angle (+ = later). Teeth in
+    ``exclude`` (already known to be out of place) are left out of the fits, so they do not
+    drag their neighbours' figures.
     """
     pitch = track.pitch_deg
     positions = round(360.0 / pitch)
@@ -292,16 +294,20 @@ def tooth_offsets(
         t = track.times[idx]
         if len(g) < 4 or g[-1] - g[0] + 1 < w:
             continue
+        use = ~np.isin(track.tooth[idx], list(exclude)) if exclude else np.ones(len(g), bool)
+        gu, tu = g[use], t[use]
         full = np.arange(g[0], g[-1] + 1)
-        k = np.clip(np.searchsorted(g, full, side="right") - 1, 0, len(g) - 2)
-        tf, _ = local_cubic(full.astype(float), g.astype(float), t, k)
+        k = np.clip(np.searchsorted(gu, full, side="right") - 1, 0, len(gu) - 2)
+        tf, _ = local_cubic(full.astype(float), gu.astype(float), tu, k)
         ideal = np.correlate(tf, coeffs, "valid")
         deriv = np.correlate(tf, dcoef, "valid")
         centre = full[half : len(full) - half]
         seen = np.isin(g, centre)
         j = g[seen] - centre[0]
         # leave-one-out: the tooth's own weight in the fit would pull its residual towards 0
-        deg = (t[seen] - ideal[j]) * pitch / deriv[j] / (1.0 - coeffs[half])
+        # (an excluded tooth had no weight in it)
+        own = np.where(np.isin(track.tooth[idx][seen], list(exclude)), 0.0, coeffs[half])
+        deg = (t[seen] - ideal[j]) * pitch / deriv[j] / (1.0 - own)
         for tooth, d in zip(track.tooth[idx][seen], deg, strict=True):
             per.setdefault(int(tooth), []).append(float(d))
     out = {}

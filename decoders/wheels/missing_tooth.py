@@ -38,6 +38,9 @@ GAP_RATIO_MIN = 1.6
 #: largest |log(measured / predicted)| accepted for an interval before sync is called lost
 # common practice, no source: about +-45 % of the predicted interval
 ACCEPT_LOG = math.log(1.45)
+#: an edge is only considered "not a tooth" when taking it as one misfits by more than this
+# common practice, no source: about 30 %, beyond what speed changes give from tooth to tooth
+SKIP_ONLY_ABOVE = math.log(1.3)
 #: accepted intervals the speed prediction is fitted to
 HISTORY = 3
 #: cost added for calling an edge "not a tooth" or a tooth "missing" (log units)
@@ -243,7 +246,9 @@ def local_pitch(times: np.ndarray, exclude: np.ndarray | None = None, half: int 
         warnings.simplefilter("ignore", RuntimeWarning)
         med = np.nanmedian(win, axis=1)
     med = np.where(np.isfinite(med), med, T)
-    bad |= np.abs(np.log(T / med)) > math.log(1.3)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = T / med
+        bad |= ~(ratio > 0) | (np.abs(np.log(np.where(ratio > 0, ratio, 1.0))) > math.log(1.3))
     v = T.copy()
     if np.any(bad) and not np.all(bad):
         keep = ~bad
@@ -320,7 +325,10 @@ def identify(times: np.ndarray, clean: bool = True) -> WheelGuess | None:
             if b - a != k:
                 continue
             span = np.arange(a + 1, b + 1)  # the intervals after one gap up to the next one
-            n = int(np.rint(np.sum(T[span] / p[span])))
+            # ordinary intervals count by the local pitch, gap candidates by their own fit
+            # (the local pitch next to a gap at a speed minimum is too short for the gap)
+            plain = span[~is_cand[span]]
+            n = int(np.rint(np.sum(T[plain] / p[plain]) + np.sum(m_all[span[is_cand[span]]] + 1)))
             elsewhere = span[is_cand[span] & (span != b)]
             missing = int(np.sum(m_all[elsewhere]))
             found.append((n, n - k - missing))
@@ -492,7 +500,8 @@ class ToothTracker:
                 gap_t = t[g + 1] - t[g - 1] if runt else t[g + 1] - t[g]
                 before = t[g - 1] - t[g - 2] if runt else t[g] - t[g - 1]
                 after = t[g + 2] - t[g + 1]
-                self._p_last = self._p_prev = float(0.5 * (before + after))
+                # the interval after tooth 1 was looked at to judge the gap: start from it
+                self._p_last = self._p_prev = float(after)
                 gap = spec.missing + 1.0
                 self._hist = [(-gap - 1.0, -gap, float(before)), (-gap, 0.0, float(gap_t))]
                 if runt:
@@ -597,6 +606,8 @@ class ToothTracker:
         for skip in (0, 1):
             if i + 1 + skip >= n:
                 break
+            if skip and best is not None and best[1] < SKIP_ONLY_ABOVE:
+                break  # the next edge is a plausible tooth: do not look for extra edges
             T = t[i + 1 + skip] - t[i]
             if T <= 0:
                 continue
