@@ -469,7 +469,17 @@ def decode_capture(
                 seconds *= 4.0
         crank = c_pick
         choices["crank"] = f"{info.channels[crank]}: {why}"
-        choices["crank_sensor"] = f"{looks[crank].kind}: {looks[crank].reason}"
+        choices["crank_sensor"] = _sensor_choice(looks[crank])
+        early: list[Finding] = []
+        if opts.crank is None and crank != 0:
+            early.append(
+                Finding(
+                    "info",
+                    "crank-channel",
+                    f"the crank signal is on channel {info.channels[crank]!r}, not the first "
+                    "channel (inputs swapped or in another order); found from its tooth pattern",
+                )
+            )
         choices["wheel"] = f"{plan.spec.name}: {plan.how}"
         if not cams:
             cams = [c for c in live if c != crank]
@@ -488,7 +498,7 @@ def decode_capture(
         locator = CamLocator(max_pitches=plan.spec.missing + 1)
         jitter = CrankJitter(plan.spec.pitch_deg)
         stats = CrankStats(info.duration_s)
-        stats.findings.extend(offset_findings)
+        stats.findings.extend(early + offset_findings)
 
         def take(edges: dict[int, Edges], teeth: ToothTrack) -> None:
             for c, e in edges.items():
@@ -605,6 +615,12 @@ def _tooth_offsets(
     if len(out) > 2:  # not single teeth: leave the wheel as drawn
         return {}, []
     return out, findings
+
+
+def _sensor_choice(look: ChannelLook) -> str:
+    if look.kind not in ("hall", "vr"):
+        return f"{look.kind}: {look.reason}"
+    return f"{look.kind} (confidence {look.confidence:.2f}): {look.reason}"
 
 
 def _too_coarse(
@@ -749,7 +765,7 @@ def _result(
                 phase_source=(c == source_cam),
             )
         )
-        choices[f"cam {name}"] = f"{sensor}: {looks[c].reason}"
+        choices[f"cam {name}"] = _sensor_choice(looks[c])
     for c in looks:
         if c != plan.channel and c not in cams and looks[c].kind in ("flat", "noise"):
             global_findings.append(
