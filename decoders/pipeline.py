@@ -725,7 +725,8 @@ def _result(
                 "info",
                 "phase-unknown",
                 "no cam pattern differs between the two crank revolutions, so the cycle phase "
-                "(which revolution is which) is unknown; angles are given per revolution",
+                "(which revolution is which) is unknown and angles are given per revolution; a "
+                "cam whose pattern differs between revolutions, recorded alongside, would fix it",
             )
         )
     cam_results: list[CamResult] = []
