@@ -198,6 +198,29 @@ def _add_console_options(group: argparse._ArgumentGroup) -> None:
     )
 
 
+def _capture_options(p: argparse.ArgumentParser) -> argparse._ArgumentGroup:
+    """The options that say what a capture holds (decode and learn share them)."""
+    g = p.add_argument_group("what the capture holds (worked out when not given)")
+    g.add_argument("--crank", metavar="CH", help=f"crank sensor channel: {CH_HELP}")
+    g.add_argument(
+        "--cam",
+        metavar="CH",
+        action="append",
+        default=[],
+        help=f"cam sensor channel: {CH_HELP}; repeat for each cam",
+    )
+    g.add_argument("--wheel", metavar="N-M", help="crank wheel in trade notation, e.g. 60-2, 36-1")
+    g.add_argument("--crank-sensor", choices=("hall", "vr"), help="crank sensor kind")
+    g.add_argument("--cam-sensor", choices=("hall", "vr"), help="cam sensor kind (every cam)")
+    g.add_argument(
+        "--sample-rate",
+        type=_positive_float,
+        metavar="HZ",
+        help="sample rate for files that carry none (or to override a CSV time column)",
+    )
+    return g
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every command (``--help`` on each)."""
     parser = argparse.ArgumentParser(
@@ -232,24 +255,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=_Formatter,
     )
     p.add_argument("capture", metavar="CAPTURE", help="capture file (.csv, .wav, .flac, .h5)")
-    g = p.add_argument_group("what the capture holds (worked out when not given)")
-    g.add_argument("--crank", metavar="CH", help=f"crank sensor channel: {CH_HELP}")
-    g.add_argument(
-        "--cam",
-        metavar="CH",
-        action="append",
-        default=[],
-        help=f"cam sensor channel: {CH_HELP}; repeat for each cam",
-    )
-    g.add_argument("--wheel", metavar="N-M", help="crank wheel in trade notation, e.g. 60-2, 36-1")
-    g.add_argument("--crank-sensor", choices=("hall", "vr"), help="crank sensor kind")
-    g.add_argument("--cam-sensor", choices=("hall", "vr"), help="cam sensor kind (every cam)")
-    g.add_argument(
-        "--sample-rate",
-        type=_positive_float,
-        metavar="HZ",
-        help="sample rate for files that carry none (or to override a CSV time column)",
-    )
+    g = _capture_options(p)
     g.add_argument(
         "--block-size",
         type=_positive_int,
@@ -367,24 +373,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("capture", metavar="CAPTURE", help="capture file (.csv, .wav, .flac, .h5)")
     p.add_argument("out", metavar="OUT", help="profile to write (.toml) or reference (.json)")
-    g = p.add_argument_group("what the capture holds (worked out when not given)")
-    g.add_argument("--crank", metavar="CH", help=f"crank sensor channel: {CH_HELP}")
-    g.add_argument(
-        "--cam",
-        metavar="CH",
-        action="append",
-        default=[],
-        help=f"cam sensor channel: {CH_HELP}; repeat for each cam",
-    )
-    g.add_argument("--wheel", metavar="N-M", help="crank wheel in trade notation, e.g. 60-2")
-    g.add_argument("--crank-sensor", choices=("hall", "vr"), help="crank sensor kind")
-    g.add_argument("--cam-sensor", choices=("hall", "vr"), help="cam sensor kind (every cam)")
-    g.add_argument(
-        "--sample-rate",
-        type=_positive_float,
-        metavar="HZ",
-        help="sample rate for files that carry none",
-    )
+    _capture_options(p)
     e = p.add_argument_group("what the profile also records (.toml only)")
     e.add_argument("--name", metavar="NAME", help="the profile's name (default: from OUT)")
     e.add_argument("--description", metavar="TEXT", help="one line on the engine and set-up")
