@@ -132,8 +132,9 @@ def look_at_channel(
     sharp = _sharpness(probe, strong, sample_rate)
     if hint is None:
         if len(strong) < 2 or not math.isfinite(sharp):
-            kind, conf = "vr", 0.5
-            why = "no sharp steps: treated as a VR (analog) signal"
+            # a signal with a clear spectral line but no step as tall as its swing is analog
+            kind, conf = "vr", 0.8 if has_lines(probe) else 0.5
+            why = "it swings without sharp steps: a VR (analog) sensor"
         elif sharp >= SHARP_HALL and looks_like_clipped_vr(edges):
             kind, conf = "vr", 0.7
             why = (
