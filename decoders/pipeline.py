@@ -550,6 +550,13 @@ def decode_capture(
             )
 
     refs = stats.reference_times
+    revs = stats.deg / 360.0
+    if stats.losses >= 3 and stats.losses > 0.2 * max(revs, 1.0):
+        raise DecodeError(
+            f"crank channel {info.channels[crank]!r} does not follow the {plan.spec.name} "
+            f"wheel: sync was lost {stats.losses} times in {revs:.0f} revolutions; check the "
+            "wheel (--wheel), or leave it out to let toothcomb identify it"
+        )
     if len(refs) == 0:
         _too_coarse(DecodeError("no reference event"), looks, crank, info)
         raise DecodeError(

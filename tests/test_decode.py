@@ -127,6 +127,10 @@ def test_wrong_hints_are_one_clear_error(tmp_path):
     # the cam channel as crank: it shows no missing-tooth gap
     with pytest.raises(DecodeError):
         decode_capture(str(path), DecodeOptions(crank="1", cams=("0",)))
+    # a wheel the crank does not have: refused, not decoded with a wrong angle
+    with pytest.raises(DecodeError, match="36-1") as e:
+        decode_capture(str(path), DecodeOptions(wheel="36-1"))
+    assert e.value.exit_code == 3
 
 
 def test_no_crank_signal_exits_3_with_the_reason(tmp_path):
