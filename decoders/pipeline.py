@@ -248,8 +248,9 @@ class CrankStats:
         self.refs: list[np.ndarray] = []
         self.rpm_min = math.inf
         self.rpm_max = -math.inf
-        self.deg = 0.0
-        self.sec = 0.0
+        # first and last (time, angle) of each sync run: the mean speed is their spans' ratio,
+        # exact whatever pieces the teeth came in
+        self._span: dict[int, list[float]] = {}
         self.min_pitch_period = math.inf
         self._last: tuple[int, float, float, float] | None = None  # run, time, angle, first a
         self._first: dict[int, tuple[float, float]] = {}
@@ -278,8 +279,6 @@ class CrankStats:
             rpm = dp / dt / 6.0
             self.rpm_min = min(self.rpm_min, float(rpm.min()))
             self.rpm_max = max(self.rpm_max, float(rpm.max()))
-            self.deg += float(dp.sum())
-            self.sec += float(dt.sum())
             one = (p[1:][same] == 1) & (dp > 0)
             if np.any(one):
                 self.min_pitch_period = min(self.min_pitch_period, float(dt[one].min()))
@@ -288,7 +287,21 @@ class CrankStats:
                 if tm >= self._next_bucket:
                     self.trace.append((float(tm), float(v)))
                     self._next_bucket = (math.floor(tm / self._bucket) + 1) * self._bucket
+        for run in np.unique(r):
+            sel = np.flatnonzero(r == run)
+            span = self._span.setdefault(int(run), [float(t[sel[0]]), float(a[sel[0]]), 0.0, 0.0])
+            span[2], span[3] = float(t[sel[-1]]), float(a[sel[-1]])
         self._last = (int(r[-1]), float(t[-1]), float(a[-1]), 0.0)
+
+    @property
+    def deg(self) -> float:
+        """Crank degrees followed, over all sync runs."""
+        return float(sum(v[3] - v[1] for v in self._span.values()))
+
+    @property
+    def sec(self) -> float:
+        """Seconds over which the crank was followed, over all sync runs."""
+        return float(sum(v[2] - v[0] for v in self._span.values()))
 
     @property
     def reference_times(self) -> np.ndarray:

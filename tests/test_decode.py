@@ -81,8 +81,18 @@ def test_quantised_edges_would_miss_at_speed(tmp_path):
     assert np.max(deg) > 0.25
 
 
-def test_block_size_does_not_change_the_answer(tmp_path):
-    path, _ = make_capture(tmp_path, idle_48k(duration_s=1.5))
+@pytest.mark.parametrize(
+    "scenario,fmt",
+    [
+        (idle_48k(), "flac"),
+        (preset("hall-36-1-two-cams-scope", duration_s=0.3), "csv"),
+        (preset("cranking-60-2-vr", duration_s=1.5), "h5"),
+    ],
+    ids=["idle-vr-soundcard", "hall-scope", "cranking-vr"],
+)
+def test_block_size_does_not_change_the_answer(tmp_path, scenario, fmt):
+    """Every figure of the result, to the last bit, whatever the blocks the capture is read in."""
+    path, _ = make_capture(tmp_path, scenario, fmt)
     answers = []
     for block in (1000, 4099, 65536):
         r = decode_capture(str(path), DecodeOptions(block_size=block))

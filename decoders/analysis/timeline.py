@@ -187,6 +187,10 @@ class CamLocator:
     def forget_before(self, time_s: float) -> None:
         """No cam edge earlier than ``time_s`` will arrive any more: drop the teeth before the
         ones placing an edge at that time would need."""
+        # edges already queued but not yet placed need their teeth too
+        for times, _dirs in self._pending.values():
+            if len(times):
+                time_s = min(time_s, float(times[0]))
         j = int(np.searchsorted(self._t, time_s)) - 3
         if j > 0:
             self._t, self._a, self._p = self._t[j:], self._a[j:], self._p[j:]
