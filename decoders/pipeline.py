@@ -398,6 +398,7 @@ class _CamState:
     high_s: float = 0.0
     total_s: float = 0.0
     last: tuple[float, int] | None = None  # time, direction of the last edge seen
+    notes: list[Finding] = field(default_factory=list)
 
     def levels(self, e: Edges) -> None:
         """Time spent high / in total, for the tooth level of a two-level cam."""
@@ -502,6 +503,15 @@ def decode_capture(
                 centre = vr_centre_direction(head[c])
                 state[c].direction_only = centre
                 state[c].leading = centre
+                if centre > 0:
+                    state[c].notes.append(
+                        Finding(
+                            "warning",
+                            "vr-reversed",
+                            f"cam VR leads on {info.channels[c]!r} are reversed: tooth centres "
+                            "cross zero rising; angles are measured on the correct crossings",
+                        )
+                    )
         offsets, offset_findings = _tooth_offsets(head[crank], plan, info.channels[crank])
         del head
 
@@ -753,7 +763,7 @@ def _result(
     for c in cams:
         name = info.channels[c]
         st = state[c]
-        fnd: list[Finding] = []
+        fnd: list[Finding] = list(st.notes)
         if looks[c].kind in ("flat", "noise"):
             fnd.append(
                 Finding("warning", "cam-no-signal", f"cam channel {name!r}: {looks[c].reason}")

@@ -829,3 +829,27 @@ def test_local_rpm_helper_matches_the_speed_law():
     sc = engine(duration_s=0.1)
     truth = simulate(sc).truth
     assert local_rpm(truth, np.array([0.05]))[0] == pytest.approx(1500.0, rel=0.021)
+
+
+@pytest.mark.parametrize("reversed_leads", [False, True])
+@pytest.mark.parametrize(
+    "pattern",
+    [((120.0, 150.0),), ((60.0, 80.0), (200.0, 220.0), (420.0, 440.0))],
+    ids=["one-tooth", "three-teeth"],
+)
+def test_vr_cam(tmp_path, pattern, reversed_leads):
+    """A VR cam sensor: events at tooth centres, found on the right crossing direction even with
+    the leads reversed (reported)."""
+    cams = (Cam(name="cam_intake", pattern=pattern, sensor=VrSensor(peak_v_at_200rpm=0.5)),)
+    chans = (
+        Channel(name="crank", source="crank", noise_v=0.003),
+        Channel(name="cam", source="cam_intake", noise_v=0.003, reversed=reversed_leads),
+    )
+    r, truth = decode(tmp_path, engine(cams=cams, channels=chans, duration_s=1.0))
+    check_crank(r, truth, ref_tol=0.1)
+    # common practice, no source: a clean VR cam's tooth centre within a tenth of a degree
+    check_cams(r, truth, tol=0.1)
+    assert r.cams[0].sensor == "vr"
+    assert {e.flank for e in r.cams[0].edges} == {"centre"}
+    cam_codes = {f.code for f in r.cams[0].findings}
+    assert ("vr-reversed" in cam_codes) == reversed_leads
