@@ -30,6 +30,7 @@ from .analysis.cams import (
     build_cam_result,
     choose_phase,
     is_symmetric,
+    tooth_level_from_times,
     vr_centre_direction,
 )
 from .analysis.identify import ChannelLook, look_at_channel
@@ -737,8 +738,7 @@ def _result(
     for c in cams:
         st = state[c]
         if st.direction_only is None and st.total_s > 0:
-            share_high = st.high_s / st.total_s
-            st.leading = -1 if share_high > 0.55 else 1
+            st.leading, _share = tooth_level_from_times(st.high_s, st.total_s)
 
     global_findings: list[Finding] = []
     shift = None

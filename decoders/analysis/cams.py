@@ -100,9 +100,16 @@ def tooth_level_direction(edges: Edges) -> tuple[int, float]:
     if len(t) < 2:
         return 1, float("nan")
     dur = np.diff(t)
-    high = float(np.sum(dur[d[:-1] > 0]))
-    total = float(np.sum(dur))
-    share_high = high / total if total > 0 else 0.5
+    return tooth_level_from_times(float(np.sum(dur[d[:-1] > 0])), float(np.sum(dur)))
+
+
+def tooth_level_from_times(high_s: float, total_s: float) -> tuple[int, float]:
+    """:func:`tooth_level_direction` from the time spent high and the time in all.
+
+    >>> tooth_level_from_times(0.2, 1.0), tooth_level_from_times(0.8, 1.0)
+    ((1, 0.2), (-1, 0.19999999999999996))
+    """
+    share_high = high_s / total_s if total_s > 0 else 0.5
     if share_high > 0.55:
         return -1, 1.0 - share_high
     return 1, share_high
