@@ -342,3 +342,13 @@ def test_regular_clock_directly() -> None:
         clock.feed(np.round(piece, 9))
     fit = clock.finish()
     assert fit.sample_rate == 48000.0 and fit.t0 == 3.0 and fit.n == 10_000
+
+
+def test_units_line_for_time_and_all_channels(tmp_path: Path) -> None:
+    """'units: s, V' over a time column and three channels: the time in s, every channel in V."""
+    text = "# units: s, V\ntime_s,A,B,C\n" + "".join(
+        f"{k * 1e-5:.9f},0.1,0.2,0.3\n" for k in range(50)
+    )
+    info, data = _read(_write(tmp_path, "u.csv", text))
+    assert info.units == ("V", "V", "V")
+    assert data.shape == (50, 3)

@@ -298,9 +298,8 @@ def _parse_meta(lines: list[_Line], layout: _Layout, shown: str) -> None:
         text = _strip_comment_prefix(line.text)
         um = _UNITS_LINE.match(text)
         if um:
-            layout.meta_units = [
-                u.strip().strip('"()[]') for u in re.split(r"[,;\t]|\s+", um.group("rest").strip())
-            ]
+            parts = re.split(r"[,;\t]|\s+", um.group("rest").strip())
+            layout.meta_units = [u for u in (p.strip().strip('"()[]') for p in parts) if u]
             continue
         m = _META.match(text)
         if not m:
@@ -800,6 +799,8 @@ class ScopeCsvReader:
                 units = list(mu)
             elif len(mu) == layout.n_fields:
                 units = [mu[c] for c in cols]
+            elif len(mu) == 2 and layout.n_fields > len(cols):
+                units = [mu[1]] * len(cols)  # "units: s, V": the time, then every channel
         dialect = {None: "spaces", ",": "comma", ";": "semicolon", "\t": "tab"}[layout.delimiter]
         mark = "decimal comma" if layout.decimal == "," else "decimal point"
         notes.insert(0, f"{dialect}-delimited, {mark}, data from line {layout.data_line}")
