@@ -369,33 +369,59 @@ def _cam_caption(cam: CamResult) -> str:
     return "deg CA after the crank reference (0-360); cycle = angle + 360 in revolution 1"
 
 
+def _phaser_moved(phaser: Any) -> bool:
+    holds = _get(phaser, "holds", ()) or ()
+    return bool(_get(phaser, "moves", ()) or any(_get(h, "hunting") for h in holds))
+
+
 def _phaser_lines(phaser: Any) -> list[str]:
     if phaser is None:
         return []
-    lines: list[str] = []
+    from .phaser_view import base_text
+
     authority = _get(phaser, "authority_deg")
     moves: Sequence[Any] = _get(phaser, "moves", ()) or ()
-    if not moves:
-        lines.append("phaser: the cam did not move during the capture")
-    else:
-        head = f"phaser: {len(moves)} move{'s' if len(moves) != 1 else ''}"
-        if _finite(authority):
-            head += f", total range seen {fmt_deg(authority, 1)} CA"
-        lines.append(head)
-        for move in moves:
-            t0 = _get(move, "t_start_s")
-            t1 = _get(move, "t_end_s")
-            when = f"{t0:.2f}-{t1:.2f} s" if _finite(t0) and _finite(t1) else "?"
-            what = f"{fmt_deg(_get(move, 'from_deg'), 1)} -> {fmt_deg(_get(move, 'to_deg'), 1)}"
-            details = [f"travel {fmt_deg(_get(move, 'travel_deg'), 1, sign=True)}"]
-            rate = _get(move, "peak_rate_deg_s")
-            if _finite(rate):
-                details.append(f"peak {rate:.0f}°/s")
-            t1090 = _get(move, "t10_90_s")
-            if _finite(t1090):
-                details.append(f"10-90 % in {t1090:.3f} s")
-            lines.append(f"  {when}: {what} ({', '.join(details)})")
+    holds: Sequence[Any] = _get(phaser, "holds", ()) or ()
+    hunting = [h for h in holds if _get(h, "hunting")]
+    if not moves and not hunting:
+        line = "phaser: the cam did not move during the capture"
+        jitter = _get(holds[0], "jitter_deg") if holds else None
+        if _finite(jitter):
+            line += f" (hold jitter {jitter:.3f}° rms)"
+        return [line]
+    head = f"phaser: {len(moves)} move{'s' if len(moves) != 1 else ''}"
+    if moves and _finite(authority):
+        head += f", largest travel {fmt_deg(authority, 1)} CA"
+    if hunting:
+        head += f", hunting in {len(hunting)} hold{'s' if len(hunting) != 1 else ''}"
+    lines = [head + f"; phase {base_text(phaser)}"]
+    dropped = _get(_get(phaser, "dropped"), "count") if isinstance(phaser, dict) else _get(
+        phaser, "dropped"
+    )
+    if dropped:
+        lines.append(f"{dropped} event(s) set aside as outliers (see the findings)")
     return lines
+
+
+def render_phaser(phaser: Any, console: Console) -> None:
+    """The phase-vs-time strip and the tables of moves and holds of a cam that moved."""
+    from .phaser_view import hold_table, move_table, phase_strip, phaser_trace
+
+    if phaser is None or not _phaser_moved(phaser):
+        return
+    trace = phaser_trace(phaser)
+    if trace["time_s"]:
+        for row in phase_strip(trace, console.width):
+            console.print(row, no_wrap=True, crop=True)
+        console.print(
+            Text("█ hold  ▓ move  ▒ hunting; deg CA against time", style="dim"), no_wrap=True
+        )
+    moves = _get(phaser, "moves", ()) or ()
+    if moves:
+        console.print(move_table(moves))
+    holds = _get(phaser, "holds", ()) or ()
+    if holds:
+        console.print(hold_table(holds))
 
 
 #: an edge whose angles span more than this (deg CA) gets a note that the cam phase moved
@@ -453,6 +479,7 @@ def render_cam(cam: CamResult, console: Console) -> None:
         console.print(Text(_cam_caption(cam), style="dim"))
     for note in _cam_notes(cam):
         console.print(Text(note))
+    render_phaser(_get(cam, "phaser"), console)
 
 
 # --------------------------------------------------------------------------- timing verdict

@@ -31,3 +31,6 @@ class DecodeOptions:
     sample_rate: float | None = None
     #: samples per block when streaming; results do not depend on it
     block_size: int = DEFAULT_BLOCK_SIZE
+    #: the cam phasers should stay parked in this capture (cranking, valve unplugged): any
+    #: move is reported as a fault
+    phaser_parked: bool = False

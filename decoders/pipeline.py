@@ -35,6 +35,7 @@ from .analysis.cams import (
 )
 from .analysis.identify import ChannelLook, look_at_channel
 from .analysis.jitter import CrankJitter, tooth_offsets
+from .analysis.phaser import with_phaser
 from .analysis.timeline import CamLocator
 from .errors import DecodeError, UsageError
 from .levels import check_finite, measure_levels
@@ -587,7 +588,9 @@ def decode_capture(
             f"no {plan.spec.name} gap found on crank channel {info.channels[crank]!r}; check the "
             "wheel (--wheel) and the channel (--crank)"
         )
-    return _result(info, plan, stats, jitter, cams, state, locator, looks, choices, fs)
+    return _result(
+        info, plan, stats, jitter, cams, state, locator, looks, choices, fs, opts.phaser_parked
+    )
 
 
 #: a tooth is placed at its measured angle when it sits this far (in pitches) from its nominal
@@ -682,6 +685,7 @@ def _result(
     looks: dict[int, ChannelLook],
     choices: dict[str, str],
     fs: float,
+    parked: bool = False,
 ) -> DecodeResult:
     crank_findings: list[Finding] = list(plan.findings) + stats.findings
     mean_rpm = stats.deg / stats.sec / 6.0 if stats.sec > 0 else float("nan")
@@ -790,12 +794,11 @@ def _result(
                 )
             )
         sensor = looks[c].kind if looks[c].kind in ("hall", "vr") else "hall"
-        cam_results.append(
-            build_cam_result(
-                name, sensor, located[c], shift, st.leading, fnd,  # type: ignore[arg-type]
-                phase_source=(c == source_cam),
-            )
+        cam = build_cam_result(
+            name, sensor, located[c], shift, st.leading, fnd,  # type: ignore[arg-type]
+            phase_source=(c == source_cam),
         )
+        cam_results.append(with_phaser(cam, crank_result.rpm_trace, parked=parked))
         choices[f"cam {name}"] = _sensor_choice(looks[c])
     for c in looks:
         if c != plan.channel and c not in cams and looks[c].kind in ("flat", "noise"):

@@ -147,6 +147,8 @@ class CamProfile:
     sensor_letter: str | None = None
     #: signal direction of a leading flank
     leading_direction: str | None = None
+    #: phaser limits that differ from the defaults (``analysis.phaser.PhaserLimits`` fields)
+    phaser: tuple[tuple[str, float], ...] = ()
 
     @property
     def period_deg(self) -> float:
@@ -310,7 +312,7 @@ _DRIVE = ("kind", "sprocket_teeth")
 _LEARNED = ("capture", "rpm", "sample_rate")
 _CAM = (
     "name", "channel", "sensor", "frame", "tolerance_deg", "sprocket_teeth", "bank",
-    "sensor_letter", "leading_direction", "pattern", "edges",
+    "sensor_letter", "leading_direction", "pattern", "edges", "phaser",
 )
 _EDGE = ("flank", "angle_deg", "direction", "uncertainty_deg", "window")
 
@@ -461,6 +463,7 @@ def _cam(ck: _Checker, value: Any, where: str) -> CamProfile:
         if "leading_direction" in c else None
     )
     pattern = _pattern(ck, c["pattern"], _join(where, "pattern"), period) if "pattern" in c else ()
+    phaser = _phaser_limits(ck, c["phaser"], _join(where, "phaser")) if "phaser" in c else ()
     if "edges" in c:
         raw = ck.array(c["edges"], _join(where, "edges"))
         edges = tuple(_edge(ck, e, f"{where}.edges[{i}]", period) for i, e in enumerate(raw))
@@ -493,7 +496,21 @@ def _cam(ck: _Checker, value: Any, where: str) -> CamProfile:
         bank=bank,
         sensor_letter=letter,
         leading_direction=leading,
+        phaser=phaser,
     )
+
+
+def _phaser_limits(ck: _Checker, value: Any, where: str) -> tuple[tuple[str, float], ...]:
+    """A cam's ``phaser`` table: overrides of the phaser limits, checked now."""
+    from .analysis.phaser import PhaserLimits
+
+    if not isinstance(value, Mapping):
+        raise ck.fail(where, f"is {_show(value)}; give a table of limits")
+    try:
+        PhaserLimits.from_mapping(dict(value), where)
+    except ValueError as exc:
+        raise UsageError(f"profile {ck.source!r}: {exc}") from None
+    return tuple(sorted((str(k), float(v)) for k, v in value.items()))
 
 
 def _pattern(
@@ -887,6 +904,8 @@ def profile_to_data(profile: EngineProfile) -> dict[str, Any]:
         cam.update({k: v for k, v in optional.items() if v is not None})
         if c.pattern:
             cam["pattern"] = [list(w) for w in c.pattern]
+        if c.phaser:
+            cam["phaser"] = dict(c.phaser)
         edges = []
         for e in c.edges:
             item: dict[str, Any] = {"flank": e.flank, "angle_deg": e.angle_deg}
@@ -919,6 +938,8 @@ def _toml_value(v: Any) -> str:
         return json.dumps(v, ensure_ascii=False)
     if isinstance(v, list | tuple):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, Mapping):
+        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
     raise TypeError(f"cannot write a {type(v).__name__} in a profile")
 
 

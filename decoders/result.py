@@ -200,6 +200,136 @@ class CamEdge:
 
 
 @dataclass(frozen=True)
+class PhaserMove:
+    """One move of a cam phaser. Phases in deg CA on the trace's base (+ = retarded)."""
+
+    #: left the start band / settled inside the end band, s
+    t_start_s: float
+    t_end_s: float
+    #: settled phase before and after the move
+    from_deg: float
+    to_deg: float
+    #: to - from (+ = retarded)
+    travel_deg: float
+    #: steepest rate, deg CA/s
+    peak_rate_deg_s: float
+    #: mean rate between the 10 % and 90 % points (0.8 travel / t10_90), deg CA/s
+    mean_rate_deg_s: float
+    #: 10-90 % response time, s
+    t10_90_s: float
+    #: largest excursion past ``to_deg`` in the direction of the move, deg CA (0 = none)
+    overshoot_deg: float
+    #: t_end_s - t_start_s
+    settling_s: float
+    #: mean engine speed during the move
+    rpm: float = float("nan")
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "t_start_s": self.t_start_s,
+            "t_end_s": self.t_end_s,
+            "from_deg": self.from_deg,
+            "to_deg": self.to_deg,
+            "travel_deg": self.travel_deg,
+            "peak_rate_deg_s": self.peak_rate_deg_s,
+            "mean_rate_deg_s": self.mean_rate_deg_s,
+            "t10_90_s": self.t10_90_s,
+            "overshoot_deg": self.overshoot_deg,
+            "settling_s": self.settling_s,
+            "rpm": self.rpm,
+        }
+
+
+@dataclass(frozen=True)
+class PhaserHold:
+    """A stretch where the cam phaser held still (or hunted around one position)."""
+
+    t_start_s: float
+    t_end_s: float
+    #: median phase, deg CA on the trace's base
+    phase_deg: float
+    #: standard deviation of the phase around ``phase_deg``, deg CA
+    jitter_deg: float
+    #: peak-to-peak of the lightly smoothed phase, deg CA
+    pp_deg: float
+    #: events in the hold
+    n: int
+    #: True when the phase swings back and forth instead of holding
+    hunting: bool = False
+    hunting_amplitude_deg: float | None = None
+    hunting_hz: float | None = None
+    #: when the hunting was seen (within the hold)
+    hunting_t_start_s: float | None = None
+    hunting_t_end_s: float | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "t_start_s": self.t_start_s,
+            "t_end_s": self.t_end_s,
+            "phase_deg": self.phase_deg,
+            "jitter_deg": self.jitter_deg,
+            "pp_deg": self.pp_deg,
+            "n": self.n,
+            "hunting": self.hunting,
+            "hunting_amplitude_deg": self.hunting_amplitude_deg,
+            "hunting_hz": self.hunting_hz,
+            "hunting_t_start_s": self.hunting_t_start_s,
+            "hunting_t_end_s": self.hunting_t_end_s,
+        }
+
+
+@dataclass(frozen=True)
+class PhaserResult:
+    """The cam phase over time and what the phaser did (``analysis.phaser``)."""
+
+    #: "first-hold" (0 = where the cam sat first, its park position at start-up) or "expected"
+    #: (0 = the profile's expected angle: the phase is the deviation)
+    base: str
+    #: on "first-hold": the raw trace value that became 0 (internal scale), else 0
+    base_shift_deg: float
+    moves: tuple[PhaserMove, ...]
+    holds: tuple[PhaserHold, ...]
+    #: the trace: one entry per cam event kept
+    time_s: tuple[float, ...]
+    phase_deg: tuple[float, ...]
+    rpm: tuple[float, ...]
+    #: index into the cam's edges of each event
+    edge: tuple[int, ...]
+    #: events set aside as outliers, and the rule that did it
+    dropped: int
+    dropped_rule: str
+    #: largest travel of a move, deg CA (0 when the cam did not move)
+    authority_deg: float
+    #: robust noise of the trace around its smoothed self, deg CA
+    noise_deg: float = 0.0
+    #: the user said the phaser should stay parked in this capture
+    expect_parked: bool = False
+
+    @property
+    def parked(self) -> bool:
+        """True when the cam held one position: no move, no hunting."""
+        return not self.moves and not any(h.hunting for h in self.holds)
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "authority_deg": self.authority_deg,
+            "base": self.base,
+            "parked": self.parked,
+            "moves": [m.to_json() for m in self.moves],
+            "holds": [h.to_json() for h in self.holds],
+            "trace": {
+                "time_s": list(self.time_s),
+                "phase_deg": list(self.phase_deg),
+                "rpm": list(self.rpm),
+                "edge": list(self.edge),
+            },
+            "dropped": {"count": self.dropped, "rule": self.dropped_rule},
+            "noise_deg": self.noise_deg,
+            "expect_parked": self.expect_parked,
+        }
+
+
+@dataclass(frozen=True)
 class CamResult:
     """Everything measured on one cam channel."""
 
@@ -212,6 +342,8 @@ class CamResult:
     #: True when this cam fixed the cycle phase (its pattern differs between the revolutions)
     phase_source: bool = False
     findings: tuple[Finding, ...] = ()
+    #: the cam phase over time, its holds and moves (``analysis.phaser``)
+    phaser: PhaserResult | None = None
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -221,6 +353,7 @@ class CamResult:
             "pattern_deg": [list(w) for w in self.pattern],
             "phase_source": self.phase_source,
             "findings": [f.to_json() for f in self.findings],
+            "phaser": self.phaser.to_json() if self.phaser is not None else None,
         }
 
 

@@ -63,6 +63,7 @@ from typing import Any
 
 import numpy as np
 
+from .analysis.phaser import PhaserLimits, with_phaser
 from .errors import UsageError
 from .profiles import (
     CamProfile,
@@ -387,6 +388,17 @@ def _teeth(pc: CamProfile, profile: EngineProfile, given: int | None) -> int | N
     if pc.sprocket_teeth is not None:
         return pc.sprocket_teeth
     return profile.drive.sprocket_teeth if profile.drive is not None else None
+
+
+def _phaser_against(cam: CamResult, pc: CamProfile, result: DecodeResult) -> CamResult:
+    """The cam's phaser analysis again, now on the profile's expected angles (the trace becomes
+    the deviation from them) and with the profile's phaser limits."""
+    expected = [e.comparison.expected_deg if e.comparison is not None else None for e in cam.edges]
+    limits = PhaserLimits.from_mapping(dict(pc.phaser)) if pc.phaser else None
+    parked = cam.phaser.expect_parked if cam.phaser is not None else False
+    return with_phaser(
+        cam, result.crank.rpm_trace, limits, parked, cam_label(pc.name), expected
+    )
 
 
 def cam_label(name: str) -> str:
@@ -726,6 +738,7 @@ def compare(
     outcomes: dict[str, tuple[CamResult, dict[str, Any]]] = {}
     for w in work:
         new_cam, summary, f = _cam_outcome(w, turn, profile, result, tolerance_deg, sprocket_teeth)
+        new_cam = _phaser_against(new_cam, w.profile, result)
         outcomes[w.profile.name] = (new_cam, summary)
         findings.extend(f)
     cam_calls = _cam_calls(outcomes)

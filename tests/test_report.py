@@ -6,6 +6,7 @@ import io
 import math
 from dataclasses import dataclass, replace
 
+import numpy as np
 import pytest
 from rich.console import Console
 from toothcomb.cli.report import (
@@ -360,42 +361,41 @@ def test_moving_cam_phase_gets_a_note() -> None:
     assert "span up to" not in render(result)
 
 
-@dataclass(frozen=True)
-class CamWithPhaser(CamResult):
-    """A cam result carrying the phaser analysis DESIGN.md describes."""
+def test_phaser_strip_and_move_table_are_drawn() -> None:
+    from toothcomb.decoders.analysis.phaser import analyse_phase_trace
 
-    phaser: dict | None = None
-
-
-def test_phaser_moves_are_listed() -> None:
     result = make_result()
     cam = result.cams[0]
-    phaser = {
-        "authority_deg": 25.0,
-        "moves": [
-            {
-                "t_start_s": 1.0,
-                "t_end_s": 1.45,
-                "from_deg": 112.5,
-                "to_deg": 137.5,
-                "travel_deg": 25.0,
-                "peak_rate_deg_s": 180.0,
-                "t10_90_s": 0.25,
-            }
-        ],
-        "holds": [],
-    }
-    with_phaser = CamWithPhaser(
-        cam.channel, cam.sensor, cam.edges, cam.pattern, cam.phase_source, cam.findings, phaser
-    )
-    lines = lines_of(render(replace(result, cams=(with_phaser,))))
-    assert "phaser: 1 move, total range seen 25.0° CA" in lines
+    # a straight 25 deg CA move from 1.0 s to 1.25 s (100 deg CA/s), events every 5 ms
+    t = np.arange(0.0, 2.0, 0.005)
+    phase = np.clip((t - 1.0) * 100.0, 0.0, 25.0)
+    phaser = analyse_phase_trace(t, phase, np.zeros(len(t), dtype=int))
+    text = render(replace(result, cams=(replace(cam, phaser=phaser),)))
+    lines = lines_of(text)
     assert (
-        "  1.00-1.45 s: 112.5° -> 137.5° (travel +25.0°, peak 180°/s, 10-90 % in 0.250 s)" in lines
+        "phaser: 1 move, largest travel 25.0° CA; phase relative to where the cam sat first "
+        "(+ = retarded)" in " ".join(lines)
     )
-    still = CamWithPhaser(cam.channel, cam.sensor, cam.edges, phaser={"moves": []})
-    text = render(replace(result, cams=(still,)))
-    assert "phaser: the cam did not move during the capture" in text
+    # the move row: 1.00-1.25 s, 0 -> 25, +25.0, 100 deg CA/s mean (0.8 * 25 / 0.2 s)
+    row = next(line for line in lines if line.startswith("M1"))
+    assert row.split()[:5] == ["M1", "1.00-1.25", "+0.0->+25.0", "+25.0", "100"]
+    # the strip: top label +25.0, bottom +0.0, moves drawn with their own character
+    top = next(i for i, line in enumerate(lines) if line.strip().startswith("+25.0 ┤"))
+    assert lines[top + 6].strip().startswith("+0.0 ┤")
+    assert "▓" in "".join(lines[top : top + 7])
+    assert all(len(line) <= WIDTH for line in lines)
+
+
+def test_a_cam_that_did_not_move_gets_one_line() -> None:
+    from toothcomb.decoders.analysis.phaser import analyse_phase_trace
+
+    result = make_result()
+    cam = result.cams[0]
+    t = np.arange(0.0, 2.0, 0.01)
+    still = analyse_phase_trace(t, 0.05 * np.sin(t * 37.0), np.zeros(len(t), dtype=int))
+    text = render(replace(result, cams=(replace(cam, phaser=still),)))
+    assert "phaser: the cam did not move during the capture (hold jitter 0.035° rms)" in text
+    assert "┤" not in text
 
 
 # --------------------------------------------------------------------------- formatting

@@ -13,8 +13,10 @@ parity is "revolution 0" is something only the cam pattern can tell:
 
 Events are grouped into the distinct edges of the pattern by direction and position on the
 cycle (720 deg when the phase is known, else 360), splitting the circle at its widest empty
-stretches -- as many as the pattern has edges of that direction per cycle -- so a phaser that
-moves an edge by tens of degrees still leaves it one edge.
+stretches -- as many as the pattern has edges of that direction per cycle. When the cam phase
+moves during the capture (a phaser) by more than the gaps between edges, the clouds of
+neighbouring edges overlap on the circle; the events are then followed in time instead
+(:func:`_tracked_clusters`), so each edge keeps its identity through the move.
 """
 
 from __future__ import annotations
@@ -163,6 +165,15 @@ def _edges_per_cycle(values: np.ndarray, cycle_index: np.ndarray, full: np.ndarr
     return int(vals[np.argmax(cnt)])
 
 
+#: a cloud of one edge's events wider than this (deg) means the cam phase moved: the events
+#: are then grouped by following them in time
+TRACK_SPREAD_DEG = 5.0
+#: whole cycles at the start of the capture whose events give the pattern to follow
+TEMPLATE_CYCLES = 6
+#: share of each event's offset from its template edge taken into the running phase estimate
+TRACK_GAIN = 0.5
+
+
 @dataclass(frozen=True)
 class _Cluster:
     direction: int
@@ -191,6 +202,70 @@ def _clusters(ev: CamEvents, position: np.ndarray, period: float, cycles: np.nda
                 continue
             centre = angle_stats(position[members], period).mean
             out.append(_Cluster(d, centre, members))
+    return out
+
+
+def _spread(values: np.ndarray, period: float) -> float:
+    """Width of the smallest arc holding all ``values`` (deg)."""
+    if len(values) < 2:
+        return 0.0
+    v = np.sort(np.mod(values, period))
+    gaps = np.diff(np.concatenate((v, [v[0] + period])))
+    return float(period - np.max(gaps))
+
+
+def _tracked_clusters(ev: CamEvents, position: np.ndarray, period: float, cycles: np.ndarray,
+                      full_cycles: np.ndarray) -> list[_Cluster] | None:
+    """Group events by following the cam phase in time.
+
+    The pattern (edge positions per direction) is taken from the first
+    :data:`TEMPLATE_CYCLES` whole cycles; then each event, in time order, is given to the
+    template edge nearest to it once the running phase estimate is added, and the estimate moves
+    by :data:`TRACK_GAIN` of the event's offset. A phaser that moves less than half the spacing
+    between neighbouring edges per event keeps every edge's identity. None when too few whole
+    cycles were seen to make a template.
+
+    >>> t = np.arange(40) * 0.05
+    >>> phase = np.clip((t - 0.5) * 100.0, 0.0, 40.0)   # a 40 deg move, 100 deg/s
+    >>> pos = np.concatenate([np.mod(c + phase, 360.0) for c in (100.0, 130.0)])
+    >>> ev = CamEvents(np.concatenate([t, t + 0.001]), np.ones(80, dtype=int), pos,
+    ...                np.zeros(80, dtype=int), np.full(80, 6000.0))
+    >>> cyc = np.concatenate([np.arange(40), np.arange(40)])
+    >>> cl = _tracked_clusters(ev, pos, 360.0, cyc, np.arange(1, 39))
+    >>> [len(c.members) for c in cl], sorted(int(m) for m in cl[0].members)[:3]
+    ([40, 40], [0, 1, 2])
+    """
+    if len(full_cycles) == 0:
+        return None
+    first = np.sort(np.unique(full_cycles))[:TEMPLATE_CYCLES]
+    centres: dict[int, np.ndarray] = {}
+    for d in (1, -1):
+        idx = np.flatnonzero(ev.direction == d)
+        if len(idx) == 0:
+            continue
+        k = _edges_per_cycle(position[idx], cycles[idx], full_cycles)
+        pick = idx[np.isin(cycles[idx], first)]
+        if k is None or len(pick) < k:
+            return None
+        labels = _split_circle(position[pick], k, period)
+        centres[d] = np.array(
+            [angle_stats(position[pick[labels == j]], period).mean for j in range(k)]
+        )
+    order = np.argsort(ev.times, kind="stable")
+    label = np.empty(len(order), dtype=int)
+    phase = 0.0
+    for i in order:
+        c = centres[int(ev.direction[i])]
+        off = signed_difference(position[i], c + phase, period)
+        j = int(np.argmin(np.abs(off)))
+        label[i] = j
+        phase += TRACK_GAIN * float(off[j])
+    out = []
+    for d, cs in centres.items():
+        for j in range(len(cs)):
+            members = np.flatnonzero((ev.direction == d) & (label == j))
+            if len(members):
+                out.append(_Cluster(d, angle_stats(position[members], period).mean, members))
     return out
 
 
@@ -282,6 +357,8 @@ def build_cam_result(
     position = ev.cycle_angle(shift) if shift is not None else ev.angle
     cyc, full = _cycles(ev, shift or {}, period)
     clusters = _clusters(ev, position, period, cyc, full)
+    if any(_spread(position[c.members], period) > TRACK_SPREAD_DEG for c in clusters):
+        clusters = _tracked_clusters(ev, position, period, cyc, full) or clusters
     clusters.sort(key=lambda c: c.centre)
     speed = ev.speed
     lead_centres = sorted(c.centre for c in clusters if c.direction == leading)

@@ -37,6 +37,24 @@ class CamPhase:
             starts.append(float(p))
         #: phaser position at the start of each move
         self.from_deg = tuple(starts)
+        ph = cam.phaser
+        self._hunt = (float(ph.hunt_deg), float(ph.hunt_hz), float(ph.hunt_from_s),
+                      float(ph.hunt_to_s) if ph.hunt_to_s > 0 else math.inf)
+
+    def _hunt_value(self, t: np.ndarray) -> np.ndarray:
+        amp, hz, t0, t1 = self._hunt
+        if amp == 0.0:
+            return np.zeros_like(t)
+        on = (t >= t0) & (t < t1)
+        return np.where(on, amp * np.sin(2.0 * np.pi * hz * (t - t0)), 0.0)
+
+    def _hunt_rate(self, t: np.ndarray) -> np.ndarray:
+        amp, hz, t0, t1 = self._hunt
+        if amp == 0.0:
+            return np.zeros_like(t)
+        on = (t >= t0) & (t < t1)
+        w = 2.0 * np.pi * hz
+        return np.where(on, amp * w * np.cos(w * (t - t0)), 0.0)
 
     @property
     def moving(self) -> bool:
@@ -60,13 +78,14 @@ class CamPhase:
         """Phaser position alone, deg CA."""
         t = np.asarray(t, dtype=float)
         out = np.full_like(t, self.initial_deg)
+        out += self._hunt_value(t)
         if not self.moves:
             return out
         k = np.searchsorted(self._t, t, side="right") - 1
         for i in range(len(self.moves)):
             m = k == i
             if np.any(m):
-                out[m] = self._move_value(i, self.from_deg[i], t[m])
+                out[m] = self._move_value(i, self.from_deg[i], t[m]) + self._hunt_value(t[m])
         return out
 
     def value(self, t: float | Sequence[float] | np.ndarray) -> np.ndarray:
@@ -77,13 +96,14 @@ class CamPhase:
         """d(phi)/dt, deg CA per second."""
         t = np.asarray(t, dtype=float)
         out = np.zeros_like(t)
+        out += self._hunt_rate(t)
         if not self.moves:
             return out
         k = np.searchsorted(self._t, t, side="right") - 1
         for i in range(len(self.moves)):
             m = k == i
             if np.any(m):
-                out[m] = self._move_rate(i, self.from_deg[i], t[m])
+                out[m] = self._move_rate(i, self.from_deg[i], t[m]) + self._hunt_rate(t[m])
         return out
 
     def move_windows(self) -> list[tuple[float, float]]:

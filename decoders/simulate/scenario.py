@@ -497,13 +497,27 @@ class PhaserMove:
 
 @dataclass(frozen=True)
 class Phaser:
-    """A cam phaser: its phase at the start and the moves it makes (holds in between)."""
+    """A cam phaser: its phase at the start and the moves it makes (holds in between).
+
+    A hunting phaser (its control loop oscillating while it should hold) adds
+    ``hunt_deg * sin(2 pi hunt_hz (t - hunt_from_s))`` between ``hunt_from_s`` and
+    ``hunt_to_s`` (0: to the end of the capture).
+    """
 
     initial_deg: float = 0.0
     moves: tuple[PhaserMove, ...] = ()
+    #: amplitude of a hunting oscillation, deg CA (0: none)
+    hunt_deg: float = 0.0
+    hunt_hz: float = 2.0
+    hunt_from_s: float = 0.0
+    hunt_to_s: float = 0.0
 
     def __post_init__(self) -> None:
         _between("initial_deg", self.initial_deg, -180.0, 180.0, " deg CA")
+        _between("hunt_deg", self.hunt_deg, 0.0, 90.0, " deg CA")
+        _positive("hunt_hz", self.hunt_hz, " Hz")
+        _finite("hunt_from_s", self.hunt_from_s)
+        _finite("hunt_to_s", self.hunt_to_s)
         times = [m.t_s for m in self.moves]
         if times != sorted(times):
             raise UsageError(f"moves start at {times!r}; list the moves in time order")
