@@ -114,6 +114,12 @@ def add_batch_parser(sub: Any, formatter: type[argparse.HelpFormatter], exit_cod
         help="folder for the summary and the per-capture results (made if missing)",
     )
     w.add_argument(
+        "--force",
+        action="store_true",
+        help="replace the results already in --out (without it, a folder holding results is "
+        "refused)",
+    )
+    w.add_argument(
         "--list",
         metavar="FILE",
         dest="capture_list",
@@ -203,6 +209,13 @@ def run_batch(args: argparse.Namespace, streams: Streams) -> int:
         tolerance_deg=args.tolerance,
     )
     out = _out_dir(args.out)
+    taken = sorted(p.name for p in out.iterdir() if p.suffix in (".json", ".csv"))
+    if taken and not _flag(args, "force"):
+        raise UsageError(
+            f"--out {args.out!r} already holds results ({', '.join(taken[:3])}"
+            f"{', ...' if len(taken) > 3 else ''}); give --force to replace them, or choose "
+            "another folder"
+        )
     rows: list[SummaryRow | None] = [None] * len(captures)
     quiet = _flag(args, "quiet")
     with (

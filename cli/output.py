@@ -64,12 +64,21 @@ def _describe_target(path: Path, what: str) -> str:
     return f"{what} {str(path)!r}"
 
 
-def write_atomic(path: str | os.PathLike[str], data: bytes | str, *, what: str = "file") -> None:
+def write_atomic(
+    path: str | os.PathLike[str],
+    data: bytes | str,
+    *,
+    what: str = "file",
+    overwrite: bool = True,
+) -> None:
     """Write ``data`` to ``path`` so that readers see either the old file or the whole new one.
 
     The temporary file is created next to the target (same file system, so ``os.replace`` is
-    atomic) and removed if anything fails. A new file gets the usual permissions (0666 less the
-    umask); an existing file keeps its own. ``what`` names the file in error messages.
+    atomic) and removed if anything fails, Ctrl-C included. A new file gets the usual
+    permissions (0666 less the umask); an existing file keeps its own. ``what`` names the file in
+    error messages. With ``overwrite=False`` an existing target is refused
+    (:class:`UsageError`) and left as it is: the new file is linked into place, which fails
+    atomically when the name is taken.
 
     >>> import tempfile, pathlib
     >>> d = pathlib.Path(tempfile.mkdtemp())
@@ -109,7 +118,16 @@ def write_atomic(path: str | os.PathLike[str], data: bytes | str, *, what: str =
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, mode)
-        os.replace(tmp, target)
+        if overwrite:
+            os.replace(tmp, target)
+        else:
+            _link_new(tmp, target)
+    except FileExistsError:
+        tmp.unlink(missing_ok=True)
+        raise UsageError(
+            f"{_describe_target(target, what)} already exists; give --force to replace it, or "
+            "choose another name"
+        ) from None
     except OSError as exc:
         tmp.unlink(missing_ok=True)
         raise UsageError(
@@ -121,7 +139,24 @@ def write_atomic(path: str | os.PathLike[str], data: bytes | str, *, what: str =
         raise
 
 
-def write_json(data: Any, target: str, *, stdout: IO[str] | None = None) -> None:
+def _link_new(tmp: Path, target: Path) -> None:
+    """Give ``tmp`` the name ``target`` only if that name is free (FileExistsError otherwise),
+    then drop the temporary name."""
+    try:
+        os.link(tmp, target)
+    except FileExistsError:
+        raise
+    except OSError:  # a file system without hard links: check, then rename
+        if target.exists() or target.is_symlink():
+            raise FileExistsError(str(target)) from None
+        os.replace(tmp, target)
+        return
+    tmp.unlink()
+
+
+def write_json(
+    data: Any, target: str, *, stdout: IO[str] | None = None, overwrite: bool = True
+) -> None:
     """Write ``data`` as JSON to ``target``: a file path (atomically) or ``"-"`` for stdout.
 
     >>> import io
@@ -136,4 +171,4 @@ def write_json(data: Any, target: str, *, stdout: IO[str] | None = None) -> None
         out.write(text)
         out.flush()
         return
-    write_atomic(target, text, what="JSON file")
+    write_atomic(target, text, what="JSON file", overwrite=overwrite)

@@ -378,3 +378,21 @@ def test_batch_help_documents_the_outputs_and_exit_codes(
         f"{EXIT_SOME_FAILED}    some captures",
     ):
         assert words in out
+
+
+def test_a_folder_holding_results_is_not_overwritten_without_force(
+    fleet: dict[str, Any], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "results"
+    out.mkdir()
+    (out / "summary.json").write_text("{}\n")
+    before = (out / "summary.json").read_text()
+    code = main(["batch", str(fleet["folder"]), "--out", str(out), "--jobs", "1", "--quiet"])
+    assert code == 2
+    assert "already holds results (summary.json); give --force" in capsys.readouterr().err
+    assert (out / "summary.json").read_text() == before
+    code = main(["batch", str(fleet["folder"]), "--out", str(out), "--jobs", "1", "--quiet",
+                 "--force"])
+    assert code == EXIT_SOME_FAILED
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["batch"]["captures"] == len(summary["rows"]) == 5

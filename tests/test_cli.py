@@ -292,7 +292,11 @@ def test_json_file_is_written_whole_and_reported(
     target = tmp_path / "out" / "result.json"
     target.parent.mkdir()
     target.write_text("x" * 100_000)  # an older, longer file is replaced, not overwritten
-    assert main(["decode", str(capture), "--json", str(target), "--width", "100"]) == 0
+    argv = ["decode", str(capture), "--json", str(target), "--width", "100"]
+    assert main(argv) == 2  # not without --force
+    assert target.read_text() == "x" * 100_000
+    capsys.readouterr()
+    assert main([*argv, "--force"]) == 0
     data = json.loads(target.read_text())
     assert data["crank"]["revolutions"] == 53
     assert sorted(p.name for p in target.parent.iterdir()) == ["result.json"]
@@ -655,5 +659,5 @@ def test_simulate_from_a_scenario_file(tmp_path: Path, capsys: pytest.CaptureFix
     assert out.stat().st_size > 0
     # a scenario field the simulator does not know is a usage error naming it
     scenario.write_text(json.dumps({"duration_s": 0.2, "colour": "red"}))
-    assert main(["simulate", str(scenario), str(out)]) == 2
+    assert main(["simulate", str(scenario), str(out), "--force"]) == 2
     assert "colour" in _one_line(capsys.readouterr().err)

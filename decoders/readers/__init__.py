@@ -1,9 +1,9 @@
 """Capture readers: turn a file into a stream of sample blocks.
 
 :func:`open_capture` is the one entry point. It picks a reader plugin (group
-``toothcomb.readers``) by sniffing the file's content: HDF5 first, then audio, then delimited
-text, then any third-party reader, or the one named by ``reader=``. The built-in readers are
-registered through entry points exactly as a third-party reader would be.
+``toothcomb.readers``) by sniffing the file's content: HDF5 first, then audio, then VCD, then
+any third-party reader, then delimited text, or the one named by ``reader=``. The built-in
+readers are registered through entry points exactly as a third-party reader would be.
 
 >>> import numpy as np, os, tempfile
 >>> from toothcomb.decoders.readers.write import write_capture
@@ -25,18 +25,29 @@ from typing import Any
 from ..errors import CaptureError, PluginError, UsageError
 from ..model import CaptureSource
 from ..plugins import READERS, plugins
-from .base import check_file, check_sample_rate, split_dataset_path
+from .base import (
+    check_channel_count,
+    check_file,
+    check_file_rate,
+    check_sample_rate,
+    split_dataset_path,
+)
 
 __all__ = ["PREFERRED_ORDER", "CaptureSource", "open_capture", "supported_formats"]
 
-#: readers tried first, in this order (sniffing binary formats before text); others follow by name
-PREFERRED_ORDER: tuple[str, ...] = ("hdf5", "audio", "csv")
+#: readers tried first, in this order (sniffing binary formats before text, and VCD's header
+#: keywords before the lenient delimited-text sniff); others follow by name
+PREFERRED_ORDER: tuple[str, ...] = ("hdf5", "audio", "vcd", "csv")
+#: readers tried last: the delimited-text sniff takes almost any file of numbers, so a
+#: third-party reader of a text format gets to look first
+LAST_ORDER: tuple[str, ...] = ("csv",)
 
 
 def _ordered() -> list[tuple[str, Any]]:
     have = plugins(READERS)
-    names = [n for n in PREFERRED_ORDER if n in have]
-    names += sorted(n for n in have if n not in PREFERRED_ORDER)
+    first = [n for n in PREFERRED_ORDER if n in have and n not in LAST_ORDER]
+    last = [n for n in LAST_ORDER if n in have]
+    names = first + sorted(n for n in have if n not in first and n not in last) + last
     return [(n, have[n]) for n in names]
 
 
@@ -116,6 +127,17 @@ def open_capture(
         raise
     except TypeError as exc:
         raise UsageError(f"reader {name!r} does not take these options ({exc})") from None
+    except OSError as exc:
+        # permissions changed, or a disk error, between the checks above and the reader's open
+        raise CaptureError(
+            f"{given}: cannot be read ({exc.strerror or exc}); check the file and its permissions"
+        ) from None
+    try:
+        check_channel_count(given, source.info.n_channels, f"the file (read as {name})")
+        check_file_rate(given, float(source.info.sample_rate))
+    except CaptureError:
+        source.close()
+        raise
     if source.info.path != given:
         try:
             source.info = replace(source.info, path=given)

@@ -13,7 +13,8 @@ from __future__ import annotations
 import math
 import os
 import struct
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -21,8 +22,15 @@ import numpy as np
 import soundfile as sf
 
 from ..errors import CaptureError
-from ..model import CaptureInfo
-from .base import SourceBase, check_file, check_sample_rate, reject_options
+from ..model import Block, CaptureInfo
+from .base import (
+    SourceBase,
+    check_block_size,
+    check_channel_count,
+    check_file,
+    check_sample_rate,
+    reject_options,
+)
 
 #: lower-case suffixes this reader claims (used when the content sniff is not conclusive)
 EXTENSIONS: tuple[str, ...] = (
@@ -60,6 +68,17 @@ MAGIC: tuple[tuple[int, bytes, str], ...] = (
 
 #: soundfile subtypes that store floats: no fixed full scale
 FLOAT_SUBTYPES = frozenset({"FLOAT", "DOUBLE", "VORBIS", "OPUS"})
+#: integer subtypes read as integers and scaled here: (integer type libsndfile fills, scale).
+#: libsndfile left-aligns every PCM code in the integer type and its own float conversion divides
+#: by the same power of two, so the values are bit for bit the same, in about half the time
+#: (libsndfile's conversion loop is slower than numpy's)
+INTEGER_READ: dict[str, tuple[str, float]] = {
+    "PCM_S8": ("int16", 2.0**-15),
+    "PCM_U8": ("int16", 2.0**-15),
+    "PCM_16": ("int16", 2.0**-15),
+    "PCM_24": ("int32", 2.0**-31),
+    "PCM_32": ("int32", 2.0**-31),
+}
 
 
 def _sniff(head: bytes, suffix: str = "") -> str | None:
@@ -77,33 +96,97 @@ def _sniff(head: bytes, suffix: str = "") -> str | None:
     return None
 
 
-def _wav_header_frames(path: Path) -> int | None:
-    """Frames a RIFF WAV header announces in its data chunk, or None when it cannot tell (not a
-    little-endian RIFF file, streaming sizes, odd layout)."""
+@dataclass(frozen=True)
+class WavHeader:
+    """What a little-endian RIFF WAVE header says about its samples (the fields that can lie)."""
+
+    #: format tag of the fmt chunk: 1 PCM, 3 IEEE float, 0xFFFE extensible, ...
+    format_tag: int
+    #: channel count
+    channels: int
+    #: bits per sample
+    bits: int
+    #: bytes per frame (all channels of one sample instant)
+    block_align: int
+    #: size of the data chunk, bytes, as the header gives it
+    data_size: int
+    #: bytes of the file after the data chunk's header
+    available: int
+
+    @property
+    def streaming(self) -> bool:
+        """True when the data size is a placeholder (0 or 0xFFFFFFFF, written before the
+        length was known); the data then runs to the end of the file."""
+        return self.data_size in (0, 0xFFFFFFFF)
+
+    @property
+    def frames(self) -> int | None:
+        """Frames the data chunk announces (None for a placeholder size)."""
+        if self.streaming or self.block_align == 0:
+            return None
+        return self.data_size // self.block_align
+
+
+def _wav_header(path: Path) -> WavHeader | None:
+    """The header of a little-endian RIFF WAVE file, or None when the file is not one (or its
+    chunks cannot be walked up to the data chunk). Reads only the chunk headers."""
     try:
         with open(path, "rb") as f:
+            size = os.fstat(f.fileno()).st_size
             head = f.read(12)
             if len(head) < 12 or head[:4] != b"RIFF" or head[8:12] != b"WAVE":
                 return None
-            block_align = 0
+            fmt: bytes | None = None
             while True:
                 ch = f.read(8)
                 if len(ch) < 8:
                     return None
-                cid, size = ch[:4], struct.unpack("<I", ch[4:])[0]
+                cid, n = ch[:4], struct.unpack("<I", ch[4:])[0]
                 if cid == b"fmt ":
-                    fmt = f.read(size + (size & 1))
-                    if len(fmt) < 14:
-                        return None
-                    block_align = struct.unpack("<H", fmt[12:14])[0]
+                    fmt = f.read(min(n, 64))
+                    f.seek(n - len(fmt) + (n & 1), os.SEEK_CUR)
                 elif cid == b"data":
-                    if block_align == 0 or size in (0, 0xFFFFFFFF):
+                    if fmt is None or len(fmt) < 16:
                         return None
-                    return size // block_align
+                    tag, channels, _rate, _bps, align, bits = struct.unpack("<HHIIHH", fmt[:16])
+                    return WavHeader(tag, channels, bits, align, n, size - f.tell())
                 else:
-                    f.seek(size + (size & 1), os.SEEK_CUR)
-    except OSError:
+                    f.seek(n + (n & 1), os.SEEK_CUR)
+    except (OSError, struct.error):
         return None
+
+
+def _check_wav_header(shown: str, h: WavHeader) -> None:
+    """Refuse a WAV header whose fields contradict each other or the file's size.
+
+    source: RIFF WAVE (Microsoft/IBM Multimedia Programming Interface and Data Specifications
+    1.0, 1991): for PCM (and IEEE float, and WAVE_FORMAT_EXTENSIBLE) block align = channels x
+    bytes per sample, and the data chunk holds whole frames.
+    """
+    check_channel_count(shown, h.channels, "the WAV header")
+    if h.format_tag in (1, 3, 0xFFFE) and h.bits > 0:
+        want = h.channels * ((h.bits + 7) // 8)
+        if h.block_align != want:
+            raise CaptureError(
+                f"{shown}: the WAV header gives {h.channels} channels of {h.bits} bits "
+                f"({want} bytes per frame) but a block align of {h.block_align} bytes; the "
+                "header is damaged, so the samples cannot be told apart"
+            )
+    if h.streaming or h.block_align == 0:
+        return
+    if h.data_size % h.block_align:
+        raise CaptureError(
+            f"{shown}: the WAV data chunk holds {h.data_size} bytes, not a whole number of "
+            f"{h.block_align}-byte frames ({h.channels} channels of {h.bits} bits); the channel "
+            "count or the sample size in the header is wrong"
+        )
+    if h.data_size > h.available:
+        have = h.available // h.block_align
+        raise CaptureError(
+            f"{shown}: the WAV header announces {h.frames} frames but the file holds "
+            f"only {have}; it is truncated (or its header is wrong): copy it again, or re-save "
+            f"it with an audio editor to keep the {have} frames there are"
+        )
 
 
 def _reason(exc: BaseException) -> str:
@@ -126,7 +209,7 @@ class AudioSource(SourceBase):
         self._frames = read_frames
         self._handles: set[sf.SoundFile] = set()
 
-    def _pieces(self, block_size: int) -> Iterator[np.ndarray]:
+    def _pieces(self, block_size: int, codes: bool = False) -> Iterator[np.ndarray]:
         try:
             handle = sf.SoundFile(self._path)
         except (sf.SoundFileError, RuntimeError, OSError) as exc:
@@ -138,7 +221,7 @@ class AudioSource(SourceBase):
             while left > 0:
                 n = min(block_size, left)
                 try:
-                    data = handle.read(n, dtype="float64", always_2d=True)
+                    data = self._read(handle, n, codes)
                 except (sf.SoundFileError, RuntimeError, OSError) as exc:
                     raise CaptureError(
                         f"{self.info.path}: audio data is damaged between frames {pos} and "
@@ -156,6 +239,52 @@ class AudioSource(SourceBase):
         finally:
             handle.close()
             self._handles.discard(handle)
+
+    def _read(self, handle: sf.SoundFile, n: int, codes: bool = False) -> np.ndarray:
+        """Up to ``n`` frames as float64 (frames, channels), or as the integer codes when
+        ``codes``; each channel contiguous in memory."""
+        how = INTEGER_READ.get(self.info.subtype)
+        if how is None:
+            return handle.read(n, dtype="float64", always_2d=True)
+        raw = handle.read(n, dtype=how[0], always_2d=True)
+        if codes:
+            return np.ascontiguousarray(raw.T).T
+        out = np.empty((raw.shape[1], raw.shape[0]))
+        np.multiply(raw.T, how[1], out=out)
+        return out.T
+
+    @property
+    def code_scale(self) -> float | None:
+        """The value of one integer code (a power of two) when the file holds integer PCM,
+        else None (then :meth:`code_blocks` gives nothing)."""
+        how = INTEGER_READ.get(self.info.subtype)
+        return how[1] if how is not None else None
+
+    def code_blocks(self, block_size: int) -> Iterator[Block]:
+        """The samples as the integers the file stores (value = code x :attr:`code_scale`),
+        in blocks as :meth:`blocks` gives them, each channel contiguous: a decode finds edges
+        on them without first making a float of every sample."""
+        size = check_block_size(block_size)
+        self._check_open()
+        if self.code_scale is None:
+            return
+        got = 0
+        for piece in self._pieces(size, codes=True):
+            yield Block(got, piece)
+            got += piece.shape[0]
+        if got != self.info.n_samples:
+            raise CaptureError(
+                f"{self.info.path}: read {got} samples but the file announced "
+                f"{self.info.n_samples}; it may have changed since it was opened"
+            )
+
+    def read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
+        """``length`` frames from each of ``starts`` (fewer at the end of the file), as float64
+        (frames, channels): samples from anywhere in the file without reading all of it."""
+        with sf.SoundFile(self._path) as handle:
+            for s in starts:
+                handle.seek(int(s))
+                yield self._read(handle, int(length))
 
     def _close(self) -> None:
         for handle in list(self._handles):
@@ -175,6 +304,7 @@ class AudioReader:
     """
 
     name = "audio"
+    handles = "sound-card recordings, anything libsndfile reads"
     extensions = EXTENSIONS
 
     @staticmethod
@@ -196,13 +326,20 @@ class AudioReader:
         rate_override = check_sample_rate(sample_rate)
         shown = os.fspath(path)
         p = check_file(path)
-        with open(p, "rb") as fh:
-            head = fh.read(16)
+        try:
+            with open(p, "rb") as fh:
+                head = fh.read(16)
+        except OSError as exc:
+            raise CaptureError(f"{shown}: cannot be read ({exc.strerror or exc})") from None
         if _sniff(head, p.suffix.lower()) is None:
             raise CaptureError(
                 f"{shown}: does not start like a sound file (no WAV, FLAC, AIFF, OGG, AU, CAF "
                 "or MP3 header); it is corrupt or not audio"
             )
+        wav = _wav_header(p)
+        if wav is not None:
+            # before libsndfile: it takes a lying header at its word
+            _check_wav_header(shown, wav)
         try:
             with sf.SoundFile(p) as f:
                 rate = float(f.samplerate)
@@ -215,17 +352,10 @@ class AudioReader:
                 f"{shown}: cannot be read as audio ({_reason(exc)}); the file may be truncated, "
                 "corrupt or not a sound file"
             ) from None
-        if channels < 1:
-            raise CaptureError(f"{shown}: the audio header announces {channels} channels")
+        check_channel_count(shown, channels, "the audio header")
         if frames <= 0:
             raise CaptureError(f"{shown}: the audio file holds no samples (0 frames)")
         notes: list[str] = []
-        promised = _wav_header_frames(p) if fmt in ("WAV", "WAVEX") else None
-        if promised is not None and promised > frames:
-            notes.append(
-                f"the header announces {promised} frames but only {frames} are in the file "
-                "(it looks truncated); reading those"
-            )
         if rate_override is not None and rate_override != rate:
             notes.append(f"sample rate {rate_override:g} Hz given overrides the file's {rate:g} Hz")
             rate = rate_override

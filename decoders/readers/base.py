@@ -52,6 +52,34 @@ def check_file(path: str | os.PathLike[str]) -> Path:
     return p
 
 
+#: most channels a capture may have; a header announcing more is refused before any block is
+#: allocated (a block holds block_size x channels float64 values: 256 channels of 65536 samples
+#: are 128 MiB)
+# common practice, no source: scopes have 2-8 inputs, sound-card interfaces a few dozen, logic
+# analyzers up to a few hundred
+MAX_CHANNELS = 256
+
+
+def check_channel_count(shown: str, n: int, where: str = "the file") -> int:
+    """``n`` when it is a channel count toothcomb reads (1..:data:`MAX_CHANNELS`), else
+    :class:`CaptureError` naming ``where`` the count came from.
+
+    >>> try:
+    ...     check_channel_count("wide.csv", 20000, "the header")
+    ... except CaptureError as e:
+    ...     print(e)
+    wide.csv: the header announces 20000 channels; toothcomb reads at most 256, so export only the crank and cam channels
+    """  # noqa: E501
+    if n < 1:
+        raise CaptureError(f"{shown}: {where} announces {n} channels; a capture needs at least one")
+    if n > MAX_CHANNELS:
+        raise CaptureError(
+            f"{shown}: {where} announces {n} channels; toothcomb reads at most {MAX_CHANNELS}, "
+            "so export only the crank and cam channels"
+        )
+    return n
+
+
 def split_dataset_path(path: str) -> tuple[str, str | None]:
     """Split ``file.h5:/group/dataset`` into the file and the path inside it.
 
@@ -82,6 +110,13 @@ def check_block_size(block_size: object) -> int:
     return int(block_size)
 
 
+#: sample rates toothcomb takes, Hz: from one sample in 1000 s to 100 GS/s, the fastest
+#: real-time oscilloscopes; a rate outside is a broken header, not a recording
+# common practice, no source
+MIN_SAMPLE_RATE = 1e-3
+MAX_SAMPLE_RATE = 1e11
+
+
 def check_sample_rate(value: object, what: str = "sample rate") -> float | None:
     """``value`` as a positive finite float (None stays None), else :class:`UsageError`.
 
@@ -96,6 +131,29 @@ def check_sample_rate(value: object, what: str = "sample rate") -> float | None:
         raise UsageError(f"{what} {value!r} is not a number; give it in Hz, e.g. 48000") from None
     if not math.isfinite(rate) or rate <= 0:
         raise UsageError(f"{what} {value!r} must be a positive number of Hz, e.g. 48000")
+    if not MIN_SAMPLE_RATE <= rate <= MAX_SAMPLE_RATE:
+        raise UsageError(
+            f"{what} {value!r} Hz is outside {MIN_SAMPLE_RATE:g} to {MAX_SAMPLE_RATE:g} Hz; give "
+            "the rate the capture was taken at, e.g. 48000"
+        )
+    return rate
+
+
+def check_file_rate(shown: str, rate: float, where: str = "the file") -> float:
+    """``rate`` when it is a sample rate a recorder could have used, else :class:`CaptureError`
+    (a header or metadata line that gives 1e300 Hz would otherwise overflow the front ends).
+
+    >>> try:
+    ...     check_file_rate("scope.csv", 1e300)
+    ... except CaptureError as e:
+    ...     print(e)
+    scope.csv: the file gives a sample rate of 1e+300 Hz, outside 0.001 to 1e+11 Hz; fix it or pass --sample-rate
+    """  # noqa: E501
+    if not (math.isfinite(rate) and MIN_SAMPLE_RATE <= rate <= MAX_SAMPLE_RATE):
+        raise CaptureError(
+            f"{shown}: {where} gives a sample rate of {rate:g} Hz, outside {MIN_SAMPLE_RATE:g} "
+            f"to {MAX_SAMPLE_RATE:g} Hz; fix it or pass --sample-rate"
+        )
     return rate
 
 
@@ -121,7 +179,8 @@ def rebuffer(pieces: Iterable[np.ndarray], block_size: int, start: int = 0) -> I
         n = piece.shape[0]
         while i < n:
             if not pending and n - i >= block_size:
-                yield Block(pos, np.ascontiguousarray(piece[i : i + block_size], dtype=np.float64))
+                # as it comes: a reader may hand over channel-major (column-contiguous) data
+                yield Block(pos, np.asarray(piece[i : i + block_size], dtype=np.float64))
                 i += block_size
                 pos += block_size
                 continue
@@ -165,9 +224,21 @@ class SourceBase:
 
     def _blocks(self, block_size: int) -> Iterator[Block]:
         got = 0
-        for block in rebuffer(self._pieces(block_size), block_size):
-            got = block.stop
-            yield block
+        pieces = self._pieces(block_size)
+        try:
+            for block in rebuffer(pieces, block_size):
+                got = block.stop
+                yield block
+        except OSError as exc:
+            # the file went away, lost its permissions or hit a disk error while being read
+            raise CaptureError(
+                f"{self.info.path}: reading stopped after {got} of {self.info.n_samples} samples "
+                f"({exc.strerror or exc}); check the file and read it again"
+            ) from None
+        finally:
+            close = getattr(pieces, "close", None)
+            if close is not None:
+                close()
         if got != self.info.n_samples:
             raise CaptureError(
                 f"{self.info.path}: read {got} samples but the file announced "

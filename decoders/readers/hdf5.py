@@ -21,9 +21,10 @@ the smaller axis) or a group. Integer samples are converted to float64 as they a
 
 from __future__ import annotations
 
+import errno
 import math
 import os
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -37,6 +38,7 @@ from .base import (
     NotIncreasing,
     RegularClock,
     SourceBase,
+    check_channel_count,
     check_file,
     check_sample_rate,
     reject_options,
@@ -302,8 +304,11 @@ def _plan_dataset(ds: Any, shown: str) -> _Plan:
             f"{shown}: dataset {ds.name} has {ds.ndim} dimensions {ds.shape}; toothcomb reads "
             "1-D (one channel) or 2-D (samples x channels) datasets"
         )
+    if min(ds.shape) == 0:
+        raise CaptureError(f"{shown}: dataset {ds.name} of shape {ds.shape} holds no samples")
     axis = 0 if ds.shape[0] >= ds.shape[1] else 1
     n, k = ds.shape[axis], ds.shape[1 - axis]
+    check_channel_count(shown, k, f"dataset {ds.name} of shape {ds.shape}")
     names = [f"ch{i}" for i in range(k)]
     for key, value in ds.attrs.items():
         if key.lower() == "channel_names":
@@ -339,12 +344,18 @@ def _plan_own(f: Any, shown: str) -> _Plan:
             "the root; the file is incomplete"
         )
     dss = [f[n] for n in names]
-    bad = [d.name for d in dss if d.ndim != 1 or not _is_numeric(d)]
+    bad = [f"{d.name}: {d.ndim}-D {d.dtype}" for d in dss if d.ndim != 1 or not _is_numeric(d)]
     if bad:
-        raise CaptureError(f"{shown}: channel dataset(s) {', '.join(bad)} are not 1-D numbers")
+        raise CaptureError(
+            f"{shown}: channel dataset(s) are not 1-D numbers ({', '.join(bad)}); each channel of "
+            "a toothcomb capture is a 1-D dataset of numbers"
+        )
     lengths = {d.shape[0] for d in dss}
     if len(lengths) != 1:
-        raise CaptureError(f"{shown}: the channel datasets differ in length; the file is damaged")
+        listed = ", ".join(f"{d.name}: {d.shape[0]}" for d in dss)
+        raise CaptureError(
+            f"{shown}: the channel datasets differ in length ({listed}); the file is damaged"
+        )
     plan = _Plan([_Column(d) for d in dss], names, [_units(d) for d in dss], lengths.pop())
     if "sample_rate" not in attrs:
         raise CaptureError(f"{shown}: a toothcomb capture without the sample_rate attribute")
@@ -384,6 +395,54 @@ def _time_axis(ds: Any, shown: str) -> tuple[float, float]:
     return fit.sample_rate, fit.t0
 
 
+def _stored_fraction(ds: Any) -> tuple[int, int] | None:
+    """(storage units written, units the dataset's shape needs) when some were never written,
+    else None. Units are chunks for a chunked dataset, bytes for a contiguous one; a compact
+    dataset is always whole, and other layouts (virtual, external) are not checked.
+
+    Reading an unwritten part gives the fill value for every sample, so a header that declares
+    far more samples than the file stores would otherwise be streamed as a long run of zeros.
+    """
+    h5py = _h5py()
+    try:
+        layout = ds.id.get_create_plist().get_layout()
+        if layout == h5py.h5d.CHUNKED and ds.chunks is not None:
+            need = 1
+            for size, chunk in zip(ds.shape, ds.chunks, strict=True):
+                need *= -(-size // chunk)
+            have = int(ds.id.get_num_chunks())
+        elif layout == h5py.h5d.CONTIGUOUS:
+            need = int(ds.size) * ds.dtype.itemsize
+            have = int(ds.id.get_storage_size())
+        else:
+            return None
+    except (AttributeError, RuntimeError, ValueError):  # an old HDF5 library: not checked
+        return None
+    return (have, need) if have < need else None
+
+
+def _check_stored(columns: list[_Column], shown: str) -> None:
+    """Refuse datasets whose declared size the file does not hold (see :func:`_stored_fraction`),
+    before any sample is read."""
+    seen: set[int] = set()
+    for col in columns:
+        ds = col.dataset
+        if id(ds) in seen:
+            continue
+        seen.add(id(ds))
+        short = _stored_fraction(ds)
+        if short is None:
+            continue
+        have, need = short
+        unit = "storage chunks" if ds.chunks is not None else "bytes"
+        shape = f" (shape {ds.shape})" if ds.ndim > 1 else ""
+        raise CaptureError(
+            f"{shown}: dataset {ds.name} declares {ds.size} samples{shape} but only {have} of "
+            f"its {need} {unit} were ever written; the capture is incomplete (the recorder "
+            "stopped early, or the header is wrong), so record or export it again"
+        )
+
+
 class Hdf5Source(SourceBase):
     """An open HDF5 capture (see :func:`toothcomb.decoders.readers.open_capture`)."""
 
@@ -404,7 +463,8 @@ class Hdf5Source(SourceBase):
         return span
 
     def _read(self, start: int, stop: int) -> np.ndarray:
-        out = np.empty((stop - start, len(self._columns)), dtype=np.float64)
+        # channel-major: each channel's samples contiguous, as the front ends read them
+        out = np.empty((len(self._columns), stop - start), dtype=np.float64).T
         done: dict[int, np.ndarray] = {}
         for j, col in enumerate(self._columns):
             ds = col.dataset
@@ -431,6 +491,13 @@ class Hdf5Source(SourceBase):
                     "looks damaged"
                 ) from None
 
+    def read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
+        """``length`` samples from each of ``starts`` (fewer at the end), as float64 (samples,
+        channels): samples from anywhere in the file without reading all of it."""
+        n = self.info.n_samples
+        for s in starts:
+            yield self._read(int(s), min(n, int(s) + int(length)))
+
     def _close(self) -> None:
         try:
             self._file.close()
@@ -451,6 +518,7 @@ class Hdf5Reader:
     """
 
     name = "hdf5"
+    handles = "HDF5 files: toothcomb's own layout, equal-length datasets with a rate attribute"
     extensions = EXTENSIONS
 
     @staticmethod
@@ -487,7 +555,15 @@ class Hdf5Reader:
         h5py = _h5py()
         try:
             f = h5py.File(p, "r")
-        except (OSError, ValueError) as exc:
+        except OSError as exc:
+            if exc.errno == errno.EACCES or "Permission denied" in str(exc):
+                raise CaptureError(
+                    f"{shown}: cannot be read (Permission denied); check its permissions"
+                ) from None
+            raise CaptureError(
+                f"{shown}: cannot be opened as HDF5 ({exc}); the file may be truncated or not HDF5"
+            ) from None
+        except ValueError as exc:
             raise CaptureError(
                 f"{shown}: cannot be opened as HDF5 ({exc}); the file may be truncated or not HDF5"
             ) from None
@@ -534,6 +610,8 @@ def _open(f: Any, p: Path, shown: str, inner: str | None, rate_given: float | No
         fmt = "hdf5"
     if plan.n < 1:
         raise CaptureError(f"{shown}: the channel datasets hold no samples")
+    check_channel_count(shown, len(plan.columns), "the file")
+    _check_stored(plan.columns, shown)
     datasets = [c.dataset for c in plan.columns]
     if not own:
         found = _find_rate(datasets, shown)

@@ -43,6 +43,7 @@ import numpy as np
 from ..errors import CaptureError
 from ..model import CaptureInfo
 from .base import (
+    MAX_CHANNELS,
     ClockFit,
     IrregularClock,
     NotIncreasing,
@@ -362,6 +363,43 @@ def _find_header(pre: list[_Line], layout: _Layout) -> None:
     layout.names, layout.units = names, units
 
 
+#: a field that reads as a column name (not a number, not a sentence)
+_NAME_FIELD = re.compile(r"[^\W\d]\S*(?: \S+){0,3}|#")
+
+
+def _check_header_count(pre: list[_Line], layout: _Layout, shown: str) -> None:
+    """Refuse a header row, right above the numbers, that names a different number of columns
+    than the rows hold (so names and units would land on the wrong channels).
+
+    Only for an explicit delimiter: with columns aligned by spaces a line of free text splits
+    into words just like a header does.
+    """
+    if layout.names or layout.delimiter is None:
+        return
+    filled = [ln for ln in pre if ln.text.strip()]
+    if not filled or filled[-1].number != layout.data_line - 1:
+        return
+    last = filled[-1]
+    text = last.text
+    if _is_comment(text) or _META.match(text) or _UNITS_LINE.match(text):
+        return
+    fields = _split(text, layout.delimiter)
+    if layout.trailing and len(fields) > 1 and fields[-1] == "":
+        fields = fields[:-1]
+    n = layout.n_fields
+    if len(fields) < 2 or len(fields) == n:
+        return
+    if not all(_NAME_FIELD.fullmatch(f) for f in fields):
+        return
+    hint = ""
+    if layout.delimiter == "," and len(fields) < n <= 2 * len(fields):
+        hint = " (decimal commas under a comma delimiter split each value in two: export with ';')"
+    raise CaptureError(
+        f"{shown}: the header on line {last.number} names {len(fields)} columns "
+        f"({_quote(text)}) but the rows below hold {n} values{hint}; give every column one name"
+    )
+
+
 def _classify_columns(layout: _Layout, rows: list[list[str]]) -> None:
     """Find the time (and sample index) column by name, else by a fixed step in column 0."""
     for i, name in enumerate(layout.names):
@@ -383,6 +421,8 @@ def _classify_columns(layout: _Layout, rows: list[list[str]]) -> None:
     try:
         col = np.array([float(r[0].replace(",", ".")) for r in rows])
     except ValueError:
+        return
+    if not np.all(np.isfinite(col)):  # 'inf' or 'nan' in the first column: not a clock
         return
     steps = np.diff(col)
     mean = float(np.mean(steps))
@@ -457,6 +497,11 @@ def _sniff(path: Path, shown: str, *, strict: bool) -> _Layout | None:
             break
         limit = HEAD_BYTES_MAX
     if picked is None:
+        if strict and not whole and sum(len(ln.text) for ln in lines) < len(head) // 2:
+            raise CaptureError(
+                f"{shown}: line {len(lines) + 1} runs on for more than {len(head) / 2**20:g} MiB "
+                "without a line end; a capture export has one short row of numbers per sample"
+            )
         if strict:
             looked = f"the first {len(lines)} lines" if not whole else "any line"
             raise CaptureError(
@@ -477,6 +522,14 @@ def _sniff(path: Path, shown: str, *, strict: bool) -> _Layout | None:
     pre = [ln for ln in lines if ln.number < first.number]
     _parse_meta(pre, layout, shown)
     _find_header(pre, layout)
+    if strict:
+        _check_header_count(pre, layout, shown)
+    if layout.n_fields > MAX_CHANNELS + 2:  # a time and an index column besides the channels
+        raise CaptureError(
+            f"{shown}: the rows from line {layout.data_line} on hold {layout.n_fields} values "
+            f"each; toothcomb reads at most {MAX_CHANNELS} channels, so export only the crank "
+            "and cam channels"
+        )
     sample = [ln for ln in body[start : start + SNIFF_ROWS]]
     rows = [f for f in (_data_fields(ln.text, (delim, dec)) for ln in sample) if f is not None]
     _classify_columns(layout, rows)
@@ -569,7 +622,8 @@ def _bad_line(chunk: _Chunk, layout: _Layout, shown: str, detail: str) -> Captur
             )
         if len(fields) != expected:
             return CaptureError(
-                f"{shown}: line {number} has {len(fields)} values where the rows above have "
+                f"{shown}: line {number} has {len(fields)} value{'s' if len(fields) != 1 else ''} "
+                f"where the rows above have "
                 f"{expected} ({_quote(line)}); fix or delete that line"
             )
         bad = fields[numeric.index(False)]
@@ -719,6 +773,7 @@ class ScopeCsvReader:
     """
 
     name = "csv"
+    handles = "scope exports as delimited text (comma, semicolon, tab or spaces)"
     extensions = EXTENSIONS
 
     @staticmethod
