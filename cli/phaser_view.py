@@ -7,7 +7,7 @@ held, ``▓`` while it moved, ``▒`` where it hunted (swung back and forth whil
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -58,23 +58,37 @@ def base_text(phaser: Any) -> str:
     return "relative to where the cam sat first (+ = retarded)"
 
 
-def phase_strip(phaser: Any, width: int, height: int = 7) -> list[Text]:
+def phase_strip(
+    phaser: Any,
+    width: int,
+    height: int = 7,
+    t_range: tuple[float, float] | None = None,
+    label: Callable[[float], str] | None = None,
+) -> list[Text]:
     """Rows of a phase-vs-time strip ``width`` characters wide: phase labels on the left, one
     column per time bin, each column filled between the lowest and highest phase seen in it.
 
     >>> ph = {"time_s": [0.0, 0.5, 1.0], "phase_deg": [0.0, 10.0, 20.0], "moves": [], "holds": []}
     >>> rows = phase_strip(ph, 30, height=3)
-    >>> [r.plain for r in rows]  # doctest: +NORMALIZE_WHITESPACE
-    ['   +20.0 ┤                    █', '         ┤          █          ',
-     '    +0.0 ┤█                    ', '         └─────────────────────',
-     '          0.00 s        1.00 s']
+    >>> for r in rows:
+    ...     print(r.plain + "|")
+       +20.0 ┤                   █|
+             ┤          █         |
+        +0.0 ┤█                   |
+             └────────────────────|
+              0.00 s        1.00 s|
     """
     t = np.asarray(_get(phaser, "time_s") or [], dtype=float)
     p = np.asarray(_get(phaser, "phase_deg") or [], dtype=float)
     cols = max(10, width - LABEL_W - 1)
     if len(t) == 0:
         return [Text("no cam events to draw")]
-    t0, t1 = float(t[0]), float(t[-1])
+    t0, t1 = t_range if t_range is not None else (float(t[0]), float(t[-1]))
+    keep = (t >= t0) & (t <= t1)
+    t, p = t[keep], p[keep]
+    if len(t) == 0:
+        return [Text("no events in the span to draw")]
+    fmt = label or (lambda v: f"{round(v, 1) + 0.0:+.1f}")
     lo, hi = float(np.min(p)), float(np.max(p))
     if hi - lo < 2.0:
         mid = 0.5 * (hi + lo)
@@ -100,9 +114,9 @@ def phase_strip(phaser: Any, width: int, height: int = 7) -> list[Text]:
     for r in range(height - 1, -1, -1):
         label = ""
         if r == height - 1:
-            label = f"{round(hi, 1) + 0.0:+.1f}"
+            label = fmt(hi)
         elif r == 0:
-            label = f"{round(lo, 1) + 0.0:+.1f}"
+            label = fmt(lo)
         line = Text(f"{label:>{LABEL_W - 1}} ┤")
         for c in range(cols):
             if grid[r, c]:
@@ -187,3 +201,58 @@ def phaser_trace(phaser: Any) -> dict[str, Any]:
         "moves": _get(phaser, "moves"),
         "holds": _get(phaser, "holds"),
     }
+
+
+def duty_strip(actuator: Any, width: int, t_range: tuple[float, float], height: int = 5,
+               ) -> list[Text]:
+    """The valve's duty (%) against time, drawn like the phase strip over the same span."""
+    t = np.asarray(_get(actuator, "time_s") or [], dtype=float)
+    d = np.asarray(_get(actuator, "duty_pct") or [], dtype=float)
+    if isinstance(actuator, dict):
+        tr = actuator.get("trace") or {}
+        t = np.asarray(tr.get("time_s") or [], dtype=float)
+        d = np.asarray(tr.get("duty_pct") or [], dtype=float)
+    data = {"time_s": t.tolist(), "phase_deg": d.tolist(), "moves": [], "holds": []}
+    return phase_strip(data, width, height, t_range, label=lambda v: f"{v:.0f} %")
+
+
+def actuator_lines(actuator: Any) -> list[str]:
+    """The valve command in a few plain lines: drive, frequency, duty, and how the cam followed.
+
+    >>> actuator_lines({"channel": "ocv", "drive": "low-side", "pwm_hz": 250.0,
+    ...     "duty": {"min": 30.0, "max": 75.0, "mean": 53.0}, "hold_duty": 50.4,
+    ...     "rate_deg_s_per_pct": -7.1, "delay_s": 0.03, "follows": True, "cam": "intake",
+    ...     "pairing": "given"})[0]
+    'valve command on ocv: PWM 250.0 Hz, low-side drive, duty 30-75 % (mean 53 %)'
+    """
+    if isinstance(actuator, dict):
+        duty = actuator.get("duty") or {}
+    else:
+        duty = {"min": _get(actuator, "duty_min"), "max": _get(actuator, "duty_max"),
+                "mean": _get(actuator, "duty_mean")}
+    drive = _get(actuator, "drive")
+    lines = [
+        f"valve command on {_get(actuator, 'channel')}: PWM {_fmt(_get(actuator, 'pwm_hz'), '.1f')}"
+        f" Hz, {drive + ' drive' if drive else 'drive side unknown'}, duty "
+        f"{_fmt(duty.get('min'), '.0f')}-{_fmt(duty.get('max'), '.0f')} % "
+        f"(mean {_fmt(duty.get('mean'), '.0f')} %)"
+    ]
+    follows = _get(actuator, "follows")
+    hold = _get(actuator, "hold_duty")
+    rate = _get(actuator, "rate_deg_s_per_pct")
+    if rate is None:
+        rate = _get(actuator, "rate_per_pct")
+    parts = []
+    if hold is not None:
+        parts.append(f"holds at {_fmt(hold, '.1f')} % duty")
+    if rate is not None:
+        way = "advances" if rate < 0 else "retards"
+        parts.append(f"more duty {way} the cam at {_fmt(abs(rate), '.1f')} deg CA/s per point")
+    if _get(actuator, "delay_s") is not None:
+        parts.append(f"responds after {_fmt(_get(actuator, 'delay_s'), '.3f')} s")
+    if follows is not None:
+        parts.append("the cam follows its command" if follows
+                     else "the cam does NOT follow its command")
+    if parts:
+        lines.append("  " + "; ".join(parts))
+    return lines

@@ -403,19 +403,25 @@ def _phaser_lines(phaser: Any) -> list[str]:
     return lines
 
 
-def render_phaser(phaser: Any, console: Console) -> None:
-    """The phase-vs-time strip and the tables of moves and holds of a cam that moved."""
-    from .phaser_view import hold_table, move_table, phase_strip, phaser_trace
+def render_phaser(phaser: Any, console: Console, actuator: Any = None) -> None:
+    """The phase-vs-time strip and the tables of moves and holds of a cam that moved; with its
+    valve command, the duty strip under it on the same time axis."""
+    from .phaser_view import duty_strip, hold_table, move_table, phase_strip, phaser_trace
 
-    if phaser is None or not _phaser_moved(phaser):
+    if phaser is None or not (_phaser_moved(phaser) or actuator is not None):
         return
     trace = phaser_trace(phaser)
     if trace["time_s"]:
-        for row in phase_strip(trace, console.width):
+        span = (float(trace["time_s"][0]), float(trace["time_s"][-1]))
+        for row in phase_strip(trace, console.width, t_range=span):
             console.print(row, no_wrap=True, crop=True)
         console.print(
             Text("█ hold  ▓ move  ▒ hunting; deg CA against time", style="dim"), no_wrap=True
         )
+        if actuator is not None:
+            for row in duty_strip(actuator, console.width, span):
+                console.print(row, no_wrap=True, crop=True)
+            console.print(Text("valve duty, same time axis", style="dim"), no_wrap=True)
     moves = _get(phaser, "moves", ()) or ()
     if moves:
         console.print(move_table(moves))
@@ -460,11 +466,9 @@ def _cam_notes(cam: CamResult) -> list[str]:
         )
     actuator = _get(cam, "actuator")
     if actuator is not None:
-        follows = _get(actuator, "follows")
-        notes.append(
-            f"valve command on {_get(actuator, 'channel', '?')}: "
-            + ("the cam follows it" if follows else "the cam does NOT follow it")
-        )
+        from .phaser_view import actuator_lines
+
+        notes.extend(actuator_lines(actuator))
     return notes
 
 
@@ -479,7 +483,7 @@ def render_cam(cam: CamResult, console: Console) -> None:
         console.print(Text(_cam_caption(cam), style="dim"))
     for note in _cam_notes(cam):
         console.print(Text(note))
-    render_phaser(_get(cam, "phaser"), console)
+    render_phaser(_get(cam, "phaser"), console, _get(cam, "actuator"))
 
 
 # --------------------------------------------------------------------------- timing verdict
@@ -752,6 +756,8 @@ def _sorted_findings(result: DecodeResult) -> list[tuple[str, Finding]]:
     tagged += [(f"crank {result.crank.channel}", f) for f in result.crank.findings]
     for cam in result.cams:
         tagged += [(f"cam {cam.channel}", f) for f in cam.findings]
+    for act in _get(result, "actuators", ()) or ():
+        tagged += [(f"valve {act.channel}", f) for f in act.findings]
     verdict = _get(result, "verdict")
     if verdict is not None:
         tagged += [("timing", f) for f in verdict.findings]
@@ -864,6 +870,13 @@ def render_decode(result: DecodeResult, console: Console, notes: Sequence[str] =
     if not result.cams:
         _heading(console, "Cams")
         console.print(Text("no cam channel was decoded", style="yellow"))
+    for act in _get(result, "actuators", ()) or ():
+        if _get(act, "cam") is None:
+            from .phaser_view import actuator_lines
+
+            _heading(console, f"Valve command - channel {act.channel}")
+            for line in actuator_lines(act):
+                console.print(Text(line))
     verdict = _get(result, "verdict")
     if verdict is not None:
         render_verdict(result, console)

@@ -34,3 +34,8 @@ class DecodeOptions:
     #: the cam phasers should stay parked in this capture (cranking, valve unplugged): any
     #: move is reported as a fault
     phaser_parked: bool = False
+    #: channels carrying a phaser valve's PWM command, each "CH" or "CH=CAM" (the cam channel it
+    #: drives); empty: a channel that switches at a steady frequency of its own is taken as one
+    valves: tuple[str, ...] = ()
+    #: "low-side" or "high-side" valve drive; None: told from the flyback spikes
+    valve_drive: str | None = None

@@ -149,6 +149,8 @@ class CamProfile:
     leading_direction: str | None = None
     #: phaser limits that differ from the defaults (``analysis.phaser.PhaserLimits`` fields)
     phaser: tuple[tuple[str, float], ...] = ()
+    #: valve-command limits that differ from the defaults (``analysis.actuator.ValveLimits``)
+    valve: tuple[tuple[str, float | bool], ...] = ()
 
     @property
     def period_deg(self) -> float:
@@ -312,7 +314,7 @@ _DRIVE = ("kind", "sprocket_teeth")
 _LEARNED = ("capture", "rpm", "sample_rate")
 _CAM = (
     "name", "channel", "sensor", "frame", "tolerance_deg", "sprocket_teeth", "bank",
-    "sensor_letter", "leading_direction", "pattern", "edges", "phaser",
+    "sensor_letter", "leading_direction", "pattern", "edges", "phaser", "valve",
 )
 _EDGE = ("flank", "angle_deg", "direction", "uncertainty_deg", "window")
 
@@ -464,6 +466,7 @@ def _cam(ck: _Checker, value: Any, where: str) -> CamProfile:
     )
     pattern = _pattern(ck, c["pattern"], _join(where, "pattern"), period) if "pattern" in c else ()
     phaser = _phaser_limits(ck, c["phaser"], _join(where, "phaser")) if "phaser" in c else ()
+    valve = _valve_limits(ck, c["valve"], _join(where, "valve")) if "valve" in c else ()
     if "edges" in c:
         raw = ck.array(c["edges"], _join(where, "edges"))
         edges = tuple(_edge(ck, e, f"{where}.edges[{i}]", period) for i, e in enumerate(raw))
@@ -497,7 +500,23 @@ def _cam(ck: _Checker, value: Any, where: str) -> CamProfile:
         sensor_letter=letter,
         leading_direction=leading,
         phaser=phaser,
+        valve=valve,
     )
+
+
+def _valve_limits(ck: _Checker, value: Any, where: str) -> tuple[tuple[str, float | bool], ...]:
+    """A cam's ``valve`` table: overrides of the valve-command limits, checked now."""
+    from .analysis.actuator import ValveLimits
+
+    if not isinstance(value, Mapping):
+        raise ck.fail(where, f"is {_show(value)}; give a table of limits")
+    try:
+        ValveLimits.from_mapping(dict(value), where)
+    except ValueError as exc:
+        raise UsageError(f"profile {ck.source!r}: {exc}") from None
+    return tuple(sorted(
+        (str(k), v if isinstance(v, bool) else float(v)) for k, v in value.items()
+    ))
 
 
 def _phaser_limits(ck: _Checker, value: Any, where: str) -> tuple[tuple[str, float], ...]:
@@ -906,6 +925,8 @@ def profile_to_data(profile: EngineProfile) -> dict[str, Any]:
             cam["pattern"] = [list(w) for w in c.pattern]
         if c.phaser:
             cam["phaser"] = dict(c.phaser)
+        if c.valve:
+            cam["valve"] = dict(c.valve)
         edges = []
         for e in c.edges:
             item: dict[str, Any] = {"flank": e.flank, "angle_deg": e.angle_deg}

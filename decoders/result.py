@@ -330,6 +330,74 @@ class PhaserResult:
 
 
 @dataclass(frozen=True)
+class ActuatorResult:
+    """A phaser's valve command (PWM) on its own channel, and how its cam followed it.
+
+    Duty is the solenoid's on-time share in percent.
+    """
+
+    channel: str
+    #: "low-side" or "high-side" (which side the driver switches); None when not told apart
+    drive: str | None
+    #: how the drive side was told
+    drive_how: str
+    #: PWM frequency from the regular periods, Hz
+    pwm_hz: float
+    duty_mean: float
+    duty_min: float
+    duty_max: float
+    #: per period: start time (turn-on), duty %, frequency Hz
+    time_s: tuple[float, ...] = ()
+    duty_pct: tuple[float, ...] = ()
+    hz: tuple[float, ...] = ()
+    #: the cam channel this valve drives, and whether the user said so ("given") or toothcomb
+    #: chose it ("proposed")
+    cam: str | None = None
+    pairing: str | None = None
+    #: duty at which the cam holds still, %
+    hold_duty: float | None = None
+    #: False when the cam does not move as the command asks (stuck, or the wrong way)
+    follows: bool | None = None
+    #: from a duty change to the cam's response, s
+    delay_s: float | None = None
+    #: cam rate per duty point away from the hold duty, deg CA/s per % (signed: - = more duty
+    #: advances the cam)
+    rate_per_pct: float | None = None
+    #: how much of the cam's rate the duty explains (coefficient of determination)
+    fit_r2: float | None = None
+    #: "advances" / "retards": what more duty did to the cam in this capture
+    more_duty: str | None = None
+    #: cam drift while the duty sat at the hold duty, deg CA/s (steady-state)
+    drift_deg_s: float | None = None
+    findings: tuple[Finding, ...] = ()
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "channel": self.channel,
+            "cam": self.cam,
+            "pairing": self.pairing,
+            "drive": self.drive,
+            "drive_how": self.drive_how,
+            "pwm_hz": self.pwm_hz,
+            "duty": {"mean": self.duty_mean, "min": self.duty_min, "max": self.duty_max},
+            "hold_duty": self.hold_duty,
+            "follows": self.follows,
+            "delay_s": self.delay_s,
+            "rate_deg_s_per_pct": self.rate_per_pct,
+            "fit_r2": self.fit_r2,
+            "more_duty": self.more_duty,
+            "drift_deg_s": self.drift_deg_s,
+            "findings": [f.message for f in self.findings],
+            "finding_codes": [f.code for f in self.findings],
+            "trace": {
+                "time_s": list(self.time_s),
+                "duty_pct": list(self.duty_pct),
+                "hz": list(self.hz),
+            },
+        }
+
+
+@dataclass(frozen=True)
 class CamResult:
     """Everything measured on one cam channel."""
 
@@ -344,6 +412,8 @@ class CamResult:
     findings: tuple[Finding, ...] = ()
     #: the cam phase over time, its holds and moves (``analysis.phaser``)
     phaser: PhaserResult | None = None
+    #: the phaser's valve command and how the cam followed it, when it was recorded
+    actuator: ActuatorResult | None = None
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -354,6 +424,7 @@ class CamResult:
             "phase_source": self.phase_source,
             "findings": [f.to_json() for f in self.findings],
             "phaser": self.phaser.to_json() if self.phaser is not None else None,
+            "actuator": self.actuator.to_json() if self.actuator is not None else None,
         }
 
 
@@ -548,12 +619,16 @@ class DecodeResult:
     choices: dict[str, str] = field(default_factory=dict)
     #: the timing verdict, after a comparison with an engine profile or a known-good capture
     verdict: Verdict | None = None
+    #: every actuator (valve command) channel, paired with a cam or not
+    actuators: tuple[ActuatorResult, ...] = ()
 
     @property
     def all_findings(self) -> list[Finding]:
         out = list(self.findings) + list(self.crank.findings)
         for c in self.cams:
             out.extend(c.findings)
+        for a in self.actuators:
+            out.extend(a.findings)
         if self.verdict is not None:
             out.extend(self.verdict.findings)
         return out
@@ -572,6 +647,7 @@ class DecodeResult:
             },
             "crank": self.crank.to_json(),
             "cams": [c.to_json() for c in self.cams],
+            "actuators": [a.to_json() for a in self.actuators],
             "findings": [f.to_json() for f in self.findings],
             "choices": dict(self.choices),
             **({"verdict": self.verdict.to_json()} if self.verdict is not None else {}),

@@ -63,6 +63,8 @@ from typing import Any
 
 import numpy as np
 
+from .actuators.pwm import PwmTrace
+from .analysis.actuator import ValveLimits, analyse_valve
 from .analysis.phaser import PhaserLimits, with_phaser
 from .errors import UsageError
 from .profiles import (
@@ -396,9 +398,19 @@ def _phaser_against(cam: CamResult, pc: CamProfile, result: DecodeResult) -> Cam
     expected = [e.comparison.expected_deg if e.comparison is not None else None for e in cam.edges]
     limits = PhaserLimits.from_mapping(dict(pc.phaser)) if pc.phaser else None
     parked = cam.phaser.expect_parked if cam.phaser is not None else False
-    return with_phaser(
-        cam, result.crank.rpm_trace, limits, parked, cam_label(pc.name), expected
-    )
+    cam = with_phaser(cam, result.crank.rpm_trace, limits, parked, cam_label(pc.name), expected)
+    act = cam.actuator
+    if act is not None and act.time_s:
+        # the valve command again, against the profile's valve limits and with the cam's name
+        hz = np.asarray(act.hz)
+        period = 1.0 / hz
+        trace = PwmTrace(np.asarray(act.time_s), period, np.asarray(act.duty_pct) / 100.0 * period,
+                         act.pwm_hz)
+        valve = ValveLimits.from_mapping(dict(pc.valve)) if pc.valve else None
+        again = analyse_valve(trace, act.channel, act.drive, act.drive_how, cam.phaser,
+                              cam.channel, act.pairing, cam_label(pc.name), valve)
+        cam = replace(cam, actuator=again)
+    return cam
 
 
 def cam_label(name: str) -> str:
@@ -851,7 +863,9 @@ def compare(
     choices = dict(result.choices)
     for name, text in how.items():
         choices[f"against {cam_label(name)}"] = text
-    return replace(result, cams=new_cams, verdict=verdict, choices=choices)
+    actuators = {c.actuator.channel: c.actuator for c in new_cams if c.actuator is not None}
+    new_acts = tuple(actuators.get(a.channel, a) for a in result.actuators)
+    return replace(result, cams=new_cams, verdict=verdict, choices=choices, actuators=new_acts)
 
 
 def _cam_calls(

@@ -148,8 +148,16 @@ def test_no_crank_signal_exits_3_with_the_reason(tmp_path):
     rng = np.random.default_rng(0)
     flat = np.zeros((48000, 2))
     write_capture(tmp_path / "flat.wav", flat, fs, ["a", "b"])
-    with pytest.raises(DecodeError, match="flat") as e:
+    # every channel constant: nothing was recorded, which is bad input (exit 2), not a decode
+    # that failed
+    with pytest.raises(SignalError, match=r"every channel .* holds one value throughout") as s:
         decode_capture(str(tmp_path / "flat.wav"), DecodeOptions(crank="0"))
+    assert s.value.exit_code == 2
+    # a flat crank beside a live channel is a decode that cannot start (exit 3)
+    live = np.column_stack([np.zeros(48000), 0.5 * np.sign(np.sin(np.arange(48000) / 50.0))])
+    write_capture(tmp_path / "flat_crank.wav", live, fs, ["a", "b"])
+    with pytest.raises(DecodeError, match="flat") as e:
+        decode_capture(str(tmp_path / "flat_crank.wav"), DecodeOptions(crank="0"))
     assert e.value.exit_code == 3
     noise = 0.01 * rng.normal(size=(48000, 2))
     write_capture(tmp_path / "noise.wav", noise, fs, ["a", "b"])
@@ -231,3 +239,16 @@ def test_moving_phaser_is_followed_event_by_event(tmp_path):
     n_true = sum(len(v) for v in __import__("conftest").truth_edges(truth, 0).values())
     assert len(err) >= 0.95 * n_true
     assert np.percentile(err, 95) < 0.1
+
+
+@pytest.mark.parametrize("name", ["cranking-60-2-vr", "belt-jumped-scope"])
+def test_a_wrong_wheel_hint_is_refused(tmp_path, name):
+    """A 60-2 capture decoded as 36-1 lines up some gaps by chance, but then shows extra and
+    missing teeth in nearly every revolution: the hint is refused, not decoded into nonsense."""
+    path, _ = make_capture(tmp_path, preset(name), fmt="h5")
+    with pytest.raises(DecodeError, match=r"does not follow the 36-1 wheel: .* extra and .* "
+                       r"missing teeth"):
+        decode_capture(str(path), DecodeOptions(wheel="36-1"))
+    # the right hint decodes with no tooth out of place
+    r = decode_capture(str(path), DecodeOptions(wheel="60-2"))
+    assert r.crank.extra_teeth + r.crank.missing_teeth <= 2

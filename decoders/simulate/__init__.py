@@ -38,6 +38,7 @@ from .scenario import (
     Runt,
     Scenario,
     SnapSpeed,
+    ValveDrive,
     VrSensor,
 )
 from .speed import Motion
@@ -67,6 +68,7 @@ __all__ = [
     "Scenario",
     "Simulation",
     "SnapSpeed",
+    "ValveDrive",
     "VrSensor",
     "cam_pattern",
     "compute_truth",

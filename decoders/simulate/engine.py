@@ -8,14 +8,15 @@ checks what only the whole scenario can tell, such as a phaser faster than the e
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 
 import numpy as np
 
 from ..errors import UsageError
+from .chain import exp_pulses
 from .phase import CamPhase
-from .scenario import HallSensor, Scenario, VrSensor
+from .scenario import HallSensor, Scenario, ValveDrive, VrSensor
 from .sensors import BUMP_SLOPE_PEAK, FluxWheel, clamp_voltage, comb_peak_slope, step_response
 from .speed import Motion, solve_increasing
 from .wheel import Geometry, angles_in_range, cam_geometry, crank_geometry
@@ -138,6 +139,60 @@ class Source:
         return min(v, self.sensor.clamp_v) if self.sensor.clamp_v is not None else v
 
 
+class ValveSource:
+    """The recorded voltage of a phaser's oil control valve solenoid (see
+    :class:`~.scenario.ValveDrive`)."""
+
+    flux = None
+
+    def __init__(self, name: str, valve: ValveDrive) -> None:
+        self.name = name
+        self.valve = valve
+
+    def switch_times(self, t_lo: float, t_hi: float) -> tuple[np.ndarray, np.ndarray]:
+        """(turn-on times, turn-off times) of the PWM in [t_lo, t_hi); each period's duty is
+        the command at the period's start."""
+        v = self.valve
+        k0 = math.floor(t_lo * v.hz) - 1
+        k1 = math.ceil(t_hi * v.hz) + 1
+        starts = np.arange(k0, k1 + 1) / v.hz
+        duty = v.duty_at(starts) / 100.0
+        on = starts[(duty > 0.0)]
+        off = (starts + duty / v.hz)[(duty > 0.0) & (duty < 1.0)]
+        return on[(on >= t_lo) & (on < t_hi)], off[(off >= t_lo) & (off < t_hi)]
+
+    def hall_levels(self) -> tuple[float, float]:
+        """Lowest and highest voltage the channel can show (for automatic scope ranges)."""
+        v = self.valve
+        top = v.battery_v + v.ripple_v
+        if v.drive == "low-side":
+            return min(v.on_v, 0.0), top + v.flyback_v
+        return -v.flyback_v, top
+
+    def peak_volts(self, omega_max: float) -> float:
+        lo, hi = self.hall_levels()
+        return max(abs(lo), abs(hi))
+
+    def output(self, t: np.ndarray, theta: np.ndarray, omega: np.ndarray) -> np.ndarray:
+        """Solenoid voltage at times ``t`` (sorted)."""
+        v = self.valve
+        t0 = float(t[0]) - TAIL_TAUS * max(v.edge_tau_s, v.flyback_tau_s)
+        t1 = float(t[-1]) + 1e-12
+        on, off = self.switch_times(t0, t1)
+        times = np.concatenate((on, off))
+        after = np.concatenate((np.ones(on.size), np.zeros(off.size)))
+        order = np.argsort(times, kind="stable")
+        times, after = times[order], after[order]
+        start_on = bool(v.duty_at(np.array([t0]))[0] / 100.0 > ((t0 * v.hz) % 1.0))
+        energised = step_response(t, times, after, 1.0 if start_on else 0.0, v.edge_tau_s)
+        battery = v.battery_v + v.ripple_v * np.sin(2.0 * np.pi * v.ripple_hz * t)
+        if v.drive == "low-side":
+            volts = battery - (battery - v.on_v) * energised
+            return volts + exp_pulses(t, off, v.flyback_v, v.flyback_tau_s)
+        volts = battery * energised
+        return volts - exp_pulses(t, off, v.flyback_v, v.flyback_tau_s)
+
+
 @dataclass
 class EngineModel:
     """Everything that evaluates a scenario."""
@@ -148,10 +203,13 @@ class EngineModel:
     cams: dict[str, Source]
     #: deg/s bound of the engine speed over the capture
     omega_max: float
+    valves: dict[str, ValveSource] = field(default_factory=dict)
 
-    def source(self, name: str) -> Source | None:
+    def source(self, name: str) -> Source | ValveSource | None:
         if name == "crank":
             return self.crank
+        if name.startswith("valve:"):
+            return self.valves.get(name)
         return self.cams.get(name)
 
     def firing_angles(self) -> tuple[np.ndarray, float]:
@@ -203,8 +261,14 @@ def build_model(scenario: Scenario) -> EngineModel:
     )
     cams: dict[str, Source] = {}
     for cam in sc.cams:
-        src = Source(cam.name, cam_geometry(cam), cam.sensor, motion, CamPhase(cam), None)
+        src = Source(
+            cam.name, cam_geometry(cam), cam.sensor, motion, CamPhase(cam, sc.duration_s), None
+        )
         if src.phase is not None and src.phase.moving:
             _check_phaser(cam.name, src, motion)
         cams[cam.name] = src
-    return EngineModel(sc, motion, crank, cams, _omega_bound(motion, sc.duration_s))
+    valves = {
+        f"valve:{cam.name}": ValveSource(f"valve:{cam.name}", cam.valve)
+        for cam in sc.cams if cam.valve is not None
+    }
+    return EngineModel(sc, motion, crank, cams, _omega_bound(motion, sc.duration_s), valves)

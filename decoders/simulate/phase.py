@@ -18,13 +18,46 @@ from typing import Any
 
 import numpy as np
 
-from .scenario import Cam, Phaser, PhaserMove  # noqa: F401  (Phaser: doctest)
+from .scenario import Cam, Phaser, PhaserMove, ValveDrive  # noqa: F401  (doctests)
+
+#: time step of the valve-driven phaser's integration, s
+VALVE_STEP_S = 2.5e-4
+
+
+def valve_trajectory(valve: ValveDrive, t_end: float) -> tuple[np.ndarray, np.ndarray]:
+    """(times, phaser position) of a phaser following its valve command, integrated in steps of
+    :data:`VALVE_STEP_S` from 0 to ``t_end`` (position piecewise linear between the times).
+
+    >>> v = ValveDrive(duty_pct=((0.0, 50.0), (0.1, 70.0)), gain_deg_s_per_pct=10.0,
+    ...                deadband_pct=0.0, delay_s=0.0)
+    >>> t, p = valve_trajectory(v, 0.2)
+    >>> round(float(np.interp(0.15, t, p)), 6)   # 20 % over hold: -200 deg CA/s for 0.05 s
+    -10.0
+    """
+    n = math.ceil(max(t_end, 0.0) / VALVE_STEP_S) + 2
+    t = np.arange(n) * VALVE_STEP_S
+    offset = valve.duty_at(t - valve.delay_s) - valve.hold_pct
+    offset = np.sign(offset) * np.maximum(np.abs(offset) - valve.deadband_pct, 0.0)
+    rate = -valve.gain_deg_s_per_pct * offset  # more duty advances: negative phase
+    if valve.wrong_way:
+        rate = -rate
+    if valve.stuck:
+        rate = np.zeros_like(rate)
+    rate = np.clip(rate, -valve.max_rate_deg_s, valve.max_rate_deg_s)
+    lo, hi = valve.stops_deg
+    p = np.empty(n)
+    p[0] = 0.0
+    x = 0.0
+    for k in range(1, n):
+        x = min(max(x + rate[k - 1] * VALVE_STEP_S, lo), hi)
+        p[k] = x
+    return t, p
 
 
 class CamPhase:
     """Phase of one cam, deg CA, and its rate, evaluated exactly at any time."""
 
-    def __init__(self, cam: Cam) -> None:
+    def __init__(self, cam: Cam, t_end: float = 0.0) -> None:
         self.static_deg = float(cam.offset_deg + cam.jump_deg)
         self.initial_deg = float(cam.phaser.initial_deg)
         self.moves: tuple[PhaserMove, ...] = cam.phaser.moves
@@ -40,6 +73,22 @@ class CamPhase:
         ph = cam.phaser
         self._hunt = (float(ph.hunt_deg), float(ph.hunt_hz), float(ph.hunt_from_s),
                       float(ph.hunt_to_s) if ph.hunt_to_s > 0 else math.inf)
+        self._valve: tuple[np.ndarray, np.ndarray] | None = None
+        if cam.valve is not None:
+            self._valve = valve_trajectory(cam.valve, t_end + 1.0)
+
+    def _valve_value(self, t: np.ndarray) -> np.ndarray:
+        if self._valve is None:
+            return np.zeros_like(t)
+        return np.interp(t, *self._valve)
+
+    def _valve_rate(self, t: np.ndarray) -> np.ndarray:
+        if self._valve is None:
+            return np.zeros_like(t)
+        tt, pp = self._valve
+        k = np.clip(np.searchsorted(tt, t, side="right") - 1, 0, len(tt) - 2)
+        inside = (t >= tt[0]) & (t < tt[-1])
+        return np.where(inside, (pp[k + 1] - pp[k]) / (tt[k + 1] - tt[k]), 0.0)
 
     def _hunt_value(self, t: np.ndarray) -> np.ndarray:
         amp, hz, t0, t1 = self._hunt
@@ -58,7 +107,7 @@ class CamPhase:
 
     @property
     def moving(self) -> bool:
-        return bool(self.moves)
+        return bool(self.moves) or self._valve is not None
 
     def _move_value(self, i: int, p0: float, t: np.ndarray) -> np.ndarray:
         m = self.moves[i]
@@ -78,7 +127,7 @@ class CamPhase:
         """Phaser position alone, deg CA."""
         t = np.asarray(t, dtype=float)
         out = np.full_like(t, self.initial_deg)
-        out += self._hunt_value(t)
+        out += self._hunt_value(t) + self._valve_value(t)
         if not self.moves:
             return out
         k = np.searchsorted(self._t, t, side="right") - 1
@@ -96,7 +145,7 @@ class CamPhase:
         """d(phi)/dt, deg CA per second."""
         t = np.asarray(t, dtype=float)
         out = np.zeros_like(t)
-        out += self._hunt_rate(t)
+        out += self._hunt_rate(t) + self._valve_rate(t)
         if not self.moves:
             return out
         k = np.searchsorted(self._t, t, side="right") - 1
@@ -152,6 +201,8 @@ class CamPhase:
         """[time_s, phase_deg] pairs that draw phi(t) over [0, t_end]: the ends, and dense points
         during each move (holds are straight lines between them)."""
         ts = {0.0, float(t_end)}
+        if self._valve is not None:
+            ts.update(float(x) for x in np.arange(0.0, t_end, 0.005))
         for t0, t1 in self.move_windows():
             for t in np.linspace(t0, t1, points_per_move):
                 if 0.0 <= t <= t_end:

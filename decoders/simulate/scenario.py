@@ -31,6 +31,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal, Union, get_args, get_origin, get_type_hints
 
+import numpy as np
+
 from ..errors import UsageError
 
 # --------------------------------------------------------------------------------------------
@@ -524,6 +526,80 @@ class Phaser:
 
 
 @dataclass(frozen=True)
+class ValveDrive:
+    """The oil control valve of a cam phaser, driven by PWM, and how the phaser follows it.
+
+    The engine computer switches the valve solenoid at ``hz`` with an on-time share (duty) that
+    steps through ``duty_pct`` ((time_s, duty %) pairs, each held until the next). A
+    **low-side** driver switches the solenoid's ground: the recorded low side sits near 0 V while
+    on and at battery voltage while off, with the solenoid's flyback spike (``flyback_v`` above
+    battery, decaying with ``flyback_tau_s``) at each turn-off. A **high-side** driver switches
+    its supply: battery while on, 0 V off, the spike going ``flyback_v`` below ground. The
+    battery carries alternator ripple.
+
+    The phaser turns at ``gain_deg_s_per_pct * (duty - hold_pct)`` deg CA/s (outside a
+    ``deadband_pct`` around the hold duty, at most ``max_rate_deg_s``), ``delay_s`` after the
+    valve is commanded, between end stops ``stops_deg`` (deg CA from park, + = retarded). More
+    duty than hold **advances** the cam (moves it to earlier, negative phase), unless
+    ``wrong_way``. ``stuck`` holds it at park whatever the command.
+    """
+
+    hz: float = 250.0
+    duty_pct: tuple[tuple[float, float], ...] = ((0.0, 50.0),)
+    drive: Literal["low-side", "high-side"] = "low-side"
+    battery_v: float = 13.8
+    ripple_v: float = 0.15
+    ripple_hz: float = 700.0
+    on_v: float = 0.3
+    flyback_v: float = 30.0
+    flyback_tau_s: float = 40e-6
+    #: time constant of the switching edges, s
+    edge_tau_s: float = 2e-6
+    hold_pct: float = 50.0
+    gain_deg_s_per_pct: float = 8.0
+    max_rate_deg_s: float = 400.0
+    deadband_pct: float = 1.0
+    delay_s: float = 0.03
+    stops_deg: tuple[float, float] = (-45.0, 0.0)
+    stuck: bool = False
+    wrong_way: bool = False
+
+    def __post_init__(self) -> None:
+        _tuples(self)
+        _positive("hz", self.hz, " Hz")
+        if not self.duty_pct:
+            raise UsageError("duty_pct is empty; give at least one (time_s, duty %) pair")
+        times = [t for t, _ in self.duty_pct]
+        if times != sorted(times):
+            raise UsageError(f"duty_pct times {times!r} are not in order; sort them")
+        for _, d in self.duty_pct:
+            _between("duty_pct", d, 0.0, 100.0, " %")
+        _positive("battery_v", self.battery_v, " V")
+        _non_negative("ripple_v", self.ripple_v)
+        _positive("ripple_hz", self.ripple_hz, " Hz")
+        _non_negative("flyback_v", self.flyback_v)
+        _positive("flyback_tau_s", self.flyback_tau_s, " s")
+        _positive("edge_tau_s", self.edge_tau_s, " s")
+        _between("hold_pct", self.hold_pct, 0.0, 100.0, " %")
+        _non_negative("gain_deg_s_per_pct", self.gain_deg_s_per_pct)
+        _positive("max_rate_deg_s", self.max_rate_deg_s, " deg CA/s")
+        _non_negative("deadband_pct", self.deadband_pct)
+        _non_negative("delay_s", self.delay_s)
+        lo, hi = self.stops_deg
+        if not lo <= 0.0 <= hi:
+            raise UsageError(
+                f"stops_deg {list(self.stops_deg)!r} must hold park (0); give (low <= 0 <= high)"
+            )
+
+    def duty_at(self, t: np.ndarray) -> np.ndarray:
+        """Commanded duty (%) at times ``t`` (the first value before the first step)."""
+        times = np.array([x for x, _ in self.duty_pct])
+        vals = np.array([d for _, d in self.duty_pct])
+        k = np.clip(np.searchsorted(times, t, side="right") - 1, 0, len(vals) - 1)
+        return vals[k]
+
+
+@dataclass(frozen=True)
 class Cam:
     """A camshaft, its trigger pattern, sensor and phase.
 
@@ -544,6 +620,9 @@ class Cam:
     #: belt/chain jumped by this many sprocket teeth (positive = retarded)
     jumped_teeth: int = 0
     phaser: Phaser = field(default_factory=Phaser)
+    #: the phaser's oil control valve (PWM) and the phaser's response to it; record it on a
+    #: channel with ``source = "valve:<cam name>"``. None: the phaser follows ``phaser``
+    valve: ValveDrive | None = None
 
     def __post_init__(self) -> None:
         _tuples(self)
@@ -554,6 +633,11 @@ class Cam:
             )
         if not self.pattern:
             raise UsageError("pattern is empty; give at least one [start, end] window")
+        if self.valve is not None and self.phaser.moves:
+            raise UsageError(
+                f"cam {self.name!r} has both phaser moves and a valve; the valve drives the "
+                "phaser, so leave out the moves"
+            )
         spans = []
         for s, e in self.pattern:
             _finite("pattern", s)
@@ -809,13 +893,14 @@ class Scenario:
         chans = self.resolved_channels()
         if not chans:
             raise UsageError("channels is empty and there is nothing to record; add a channel")
-        sources = {"crank", "none", *names}
+        sources = {"crank", "none", *names, *(f"valve:{c.name}" for c in self.cams if c.valve)}
         labels = [c.label for c in chans]
         for c in chans:
             if c.source not in sources:
                 raise UsageError(
-                    f"channels: source {c.source!r} is not 'crank', 'none' or a cam name "
-                    f"({', '.join(names) or 'no cams'}); give one of those"
+                    f"channels: source {c.source!r} is not 'crank', 'none', a cam name "
+                    f"({', '.join(names) or 'no cams'}) or 'valve:<cam>' of a cam with a valve; "
+                    "give one of those"
                 )
             if labels.count(c.label) > 1:
                 raise UsageError(

@@ -284,6 +284,7 @@ def _cam_truth(sc: Scenario, model: EngineModel, ref: float, name: str) -> dict[
             "moves": src.phase.summary(),
             "trajectory": src.phase.trajectory(T),
         },
+        "valve": dataclasses.asdict(cam.valve) if cam.valve is not None else None,
     }
     if hall:
         assert isinstance(cam.sensor, HallSensor)
