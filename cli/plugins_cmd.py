@@ -1,4 +1,4 @@
-"""``toothcomb plugins``: the readers, sensor front ends and wheel decoders that are installed.
+"""``toothcomb plugins``: the installed readers, sensor front ends, wheel and actuator decoders.
 
 Each comes from an entry point (groups ``toothcomb.readers``, ``toothcomb.frontends``,
 ``toothcomb.wheels``); the list shows its name, the distribution that provides it with its
@@ -43,7 +43,7 @@ def add_plugins_parser(sub: Any, formatter: type[argparse.HelpFormatter], exit_c
 
     p = sub.add_parser(
         "plugins",
-        help="list the installed readers, sensor front ends and wheel decoders",
+        help="list the installed readers, sensor front ends, wheel and actuator decoders",
         description=_para(
             "List the plugins toothcomb found through its entry points (readers, sensor front "
             "ends, wheel decoders), the distribution that provides each with its version, and "
