@@ -146,6 +146,24 @@ def _width(text: str) -> int:
     return value
 
 
+def _plot_kinds(text: str) -> tuple[str, ...]:
+    from .plot import parse_kinds
+
+    try:
+        return parse_kinds(text)
+    except UsageError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _plot_span(text: str) -> Any:
+    from .plot import parse_span
+
+    try:
+        return parse_span(text)
+    except UsageError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
 # --------------------------------------------------------------------------- parser
 
 
@@ -173,10 +191,38 @@ def _add_output_options(p: argparse.ArgumentParser, *, plot: bool) -> None:
         out.add_argument(
             "--plot",
             metavar="PATH",
-            help="draw speed, cam angles over time and their spread to PATH "
-            "(.png, .svg or .pdf; needs matplotlib)",
+            help="draw pictures of the decode to PATH (.png, .svg or .pdf; needs matplotlib), "
+            "one figure with a panel per --plot-kind",
         )
+        out.add_argument(
+            "--plot-kind",
+            type=_plot_kinds,
+            metavar="KIND[,KIND]",
+            help="panels to draw, top to bottom: waveform (crank and cam signals over "
+            "--plot-span with teeth, gaps, reference events R1.. and cam events E1..), speed "
+            "(per tooth), strip (the 720 deg cycle, expected vs measured edges, off-by-teeth "
+            "marked), phase (cam phase vs time, moves, holds), jitter (histogram per edge); "
+            "default all: every kind, phase only when a phaser moved",
+        )
+        out.add_argument(
+            "--plot-span",
+            type=_plot_span,
+            metavar="START:END",
+            help="seconds of the capture the waveform panel shows, read again from the file "
+            "(default: about two revolutions around the first reference event)",
+        )
+    _add_force_option(out)
     _add_console_options(out)
+
+
+def _add_force_option(group: argparse._ArgumentGroup) -> None:
+    group.add_argument(
+        "--force",
+        action="store_true",
+        default=argparse.SUPPRESS,
+        help="replace output files that already exist (without it an existing file is refused "
+        "and left as it is)",
+    )
 
 
 def _add_console_options(group: argparse._ArgumentGroup) -> None:
@@ -221,6 +267,32 @@ def _capture_options(p: argparse.ArgumentParser) -> argparse._ArgumentGroup:
     return g
 
 
+def _verdict_options(p: argparse.ArgumentParser) -> argparse._ArgumentGroup:
+    """The options of a timing comparison (decode and batch share them)."""
+    v = p.add_argument_group("timing verdict")
+    v.add_argument(
+        "--against",
+        metavar="REF",
+        help="compare with REF: an engine profile (.toml), the --json output of a decode of a "
+        "known-good capture of the same engine, or a shipped profile's name "
+        "(see 'toothcomb profiles')",
+    )
+    v.add_argument(
+        "--sprocket-teeth",
+        type=_sprocket_teeth,
+        metavar="T",
+        help="teeth on the cam sprocket (one drive tooth = 720/T deg CA); overrides the profile",
+    )
+    v.add_argument(
+        "--tolerance",
+        type=_tolerance,
+        metavar="DEG",
+        help="largest deviation still in time, deg CA; overrides the profile (default: the "
+        "profile's, else 3)",
+    )
+    return v
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every command (``--help`` on each)."""
     parser = argparse.ArgumentParser(
@@ -263,26 +335,27 @@ def build_parser() -> argparse.ArgumentParser:
         default=DEFAULT_BLOCK_SIZE,
         help="samples read per block; the result does not depend on it (default: %(default)s)",
     )
-    v = p.add_argument_group("timing verdict")
-    v.add_argument(
-        "--against",
-        metavar="REF",
-        help="compare with REF: an engine profile (.toml), the --json output of a decode of a "
-        "known-good capture of the same engine, or a shipped profile's name "
-        "(see 'toothcomb profiles')",
+    _verdict_options(p)
+    ph = p.add_argument_group("cam phaser")
+    ph.add_argument(
+        "--phaser-parked",
+        action="store_true",
+        help="the cam phasers should stay parked in this capture (cranking, valve unplugged): "
+        "report any move as a fault, and the offset from park when a profile gives it",
     )
-    v.add_argument(
-        "--sprocket-teeth",
-        type=_sprocket_teeth,
-        metavar="T",
-        help="teeth on the cam sprocket (one drive tooth = 720/T deg CA); overrides the profile",
+    ph.add_argument(
+        "--valve",
+        action="append",
+        default=[],
+        metavar="CH[=CAM]",
+        help="channel CH carries a phaser valve's PWM command, driving the cam on channel CAM "
+        "(repeat for each valve); without it a channel switching at a steady frequency with "
+        "flyback spikes is taken as one, and paired with the cam that moved most",
     )
-    v.add_argument(
-        "--tolerance",
-        type=_tolerance,
-        metavar="DEG",
-        help="largest deviation still in time, deg CA; overrides the profile (default: the "
-        "profile's, else 3)",
+    ph.add_argument(
+        "--valve-drive",
+        choices=("low-side", "high-side"),
+        help="which side the valve driver switches (default: told from the flyback spikes)",
     )
     _add_output_options(p, plot=True)
     p.set_defaults(run=run_decode)
@@ -355,7 +428,9 @@ def build_parser() -> argparse.ArgumentParser:
         "--duration", type=_positive_float, metavar="S", help="change the length in seconds"
     )
     p.add_argument("--seed", type=int, metavar="N", help="change the noise seed")
-    _add_console_options(p.add_argument_group("output"))
+    out = p.add_argument_group("output")
+    _add_force_option(out)
+    _add_console_options(out)
     p.set_defaults(run=run_simulate)
 
     # learn
@@ -392,7 +467,9 @@ def build_parser() -> argparse.ArgumentParser:
         "BTDC/ATDC)",
     )
     e.add_argument("--cylinders", type=_positive_int, metavar="N", help="number of cylinders")
-    _add_console_options(p.add_argument_group("output"))
+    out = p.add_argument_group("output")
+    _add_force_option(out)
+    _add_console_options(out)
     p.set_defaults(run=run_learn)
 
     # profiles
@@ -409,6 +486,18 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("name", metavar="NAME", nargs="?", help="print this profile's TOML")
     p.set_defaults(run=run_profiles)
+
+    # plugins, preview (in their own modules)
+    from .plugins_cmd import add_plugins_parser
+    from .preview import add_preview_parser
+
+    add_plugins_parser(sub, _Formatter, EXIT_CODES_HELP)
+    add_preview_parser(sub, _Formatter, EXIT_CODES_HELP)
+
+    # batch (its own module): many captures, on this machine's cores or on Dask
+    from .batch_cmd import add_batch_parser
+
+    add_batch_parser(sub, _Formatter, EXIT_CODES_HELP)
 
     # version
     p = sub.add_parser(
@@ -484,13 +573,19 @@ def _check_capture(path: str) -> None:
     raise CaptureError(f"capture file {path!r} does not exist; check the path and the spelling")
 
 
-def _check_output_target(path: str | None, what: str) -> None:
-    """Fail before a long decode when an output file could not be written afterwards."""
+def _check_output_target(path: str | None, what: str, force: bool = False) -> None:
+    """Fail before a long decode when an output file could not be written afterwards, or
+    already exists and ``force`` (``--force``) is not given: toothcomb writes only to the paths
+    named on the command line, and replaces an existing file only when told to."""
     if not path or path == "-":
         return
     target = Path(path)
     if target.is_dir():
         raise UsageError(f"{what} {path!r} is a folder; give a file name")
+    if not force and (target.exists() or target.is_symlink()):
+        raise UsageError(
+            f"{what} {path!r} already exists; give --force to replace it, or choose another name"
+        )
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise UsageError(
@@ -534,14 +629,22 @@ def _finish_decode(result: Any, args: argparse.Namespace, streams: Streams) -> i
     console = _report_console(args, streams)
     notes: list[str] = []
     if args.json:
-        write_json(result.to_json(), args.json, stdout=streams.out)
+        write_json(
+            result.to_json(), args.json, stdout=streams.out, overwrite=_flag(args, "force")
+        )
         if args.json != "-":
             notes.append(f"JSON written to {args.json}")
     plot = getattr(args, "plot", None)
     if plot:
         from .plot import plot_result
 
-        plot_result(result, plot)
+        plot_result(
+            result,
+            plot,
+            kinds=getattr(args, "plot_kind", None),
+            span=getattr(args, "plot_span", None),
+            overwrite=_flag(args, "force"),
+        )
         notes.append(f"plot written to {plot}")
     if console is not None:
         render_decode(result, console, notes)
@@ -549,13 +652,22 @@ def _finish_decode(result: Any, args: argparse.Namespace, streams: Streams) -> i
 
 
 def _prepare_outputs(args: argparse.Namespace) -> None:
-    _check_output_target(getattr(args, "json", None), "JSON file")
+    _check_output_target(getattr(args, "json", None), "JSON file", _flag(args, "force"))
+    kinds, span = getattr(args, "plot_kind", None), getattr(args, "plot_span", None)
+    for flag, value in (
+        ("--plot-kind", None if kinds is None else ",".join(kinds)),
+        ("--plot-span", None if span is None else f"{span.start_s:g}:{span.end_s:g}"),
+    ):
+        if value is not None and not getattr(args, "plot", None):
+            raise UsageError(
+                f"{flag} {value} says what to draw but not where; add --plot PATH (e.g. run.png)"
+            )
     if getattr(args, "plot", None):
         from .plot import plot_format, require_matplotlib
 
         plot_format(args.plot)
         require_matplotlib()
-        _check_output_target(args.plot, "plot file")
+        _check_output_target(args.plot, "plot file", _flag(args, "force"))
 
 
 def _reference(args: argparse.Namespace) -> Any:
@@ -577,20 +689,29 @@ def _reference(args: argparse.Namespace) -> Any:
     return load_reference(against)
 
 
-def run_decode(args: argparse.Namespace, streams: Streams) -> int:
-    """``toothcomb decode``: decode a capture, compare it when asked, and report."""
-    _prepare_outputs(args)
-    _check_capture(args.capture)
-    reference = _reference(args)
-    options = DecodeOptions(
+def decode_options(args: argparse.Namespace) -> DecodeOptions:
+    """The decode hints and settings given on the command line (decode, learn and batch share
+    them; an option a command does not have keeps its default)."""
+    return DecodeOptions(
         crank=args.crank,
         cams=tuple(args.cam),
         wheel=args.wheel,
         crank_sensor=args.crank_sensor,
         cam_sensor=args.cam_sensor,
         sample_rate=args.sample_rate,
-        block_size=args.block_size,
+        block_size=getattr(args, "block_size", DEFAULT_BLOCK_SIZE),
+        phaser_parked=bool(getattr(args, "phaser_parked", False)),
+        valves=tuple(getattr(args, "valve", ()) or ()),
+        valve_drive=getattr(args, "valve_drive", None),
     )
+
+
+def run_decode(args: argparse.Namespace, streams: Streams) -> int:
+    """``toothcomb decode``: decode a capture, compare it when asked, and report."""
+    _prepare_outputs(args)
+    _check_capture(args.capture)
+    reference = _reference(args)
+    options = decode_options(args)
     result = _decode_with_progress(args.capture, options, args, streams)
     if reference is not None:
         from toothcomb.decoders.verdict import compare
@@ -631,16 +752,9 @@ def run_learn(args: argparse.Namespace, streams: Streams) -> int:
         raise UsageError(
             f"{given[0]} is recorded only in a profile; name the output .toml instead of .json"
         )
-    _check_output_target(args.out, "output file")
+    _check_output_target(args.out, "output file", _flag(args, "force"))
     _check_capture(args.capture)
-    options = DecodeOptions(
-        crank=args.crank,
-        cams=tuple(args.cam),
-        wheel=args.wheel,
-        crank_sensor=args.crank_sensor,
-        cam_sensor=args.cam_sensor,
-        sample_rate=args.sample_rate,
-    )
+    options = decode_options(args)
     result = _decode_with_progress(args.capture, options, args, streams)
     edges = sum(len(c.edges) for c in result.cams)
     if suffix == ".toml":
@@ -654,13 +768,17 @@ def run_learn(args: argparse.Namespace, streams: Streams) -> int:
             tdc_after_reference_deg=args.tdc_after_reference,
             cylinders=args.cylinders,
         )
-        write_atomic(args.out, dumps_profile(profile), what="profile")
+        write_atomic(
+            args.out, dumps_profile(profile), what="profile", overwrite=_flag(args, "force")
+        )
         what = f"profile {profile.name!r} written to {args.out}"
     else:
         from toothcomb.decoders.profiles import profile_from_decode_json
 
         profile_from_decode_json(result.to_json(), args.capture)  # refuses a decode without cams
-        write_atomic(args.out, dumps_json(result.to_json()), what="reference")
+        write_atomic(
+            args.out, dumps_json(result.to_json()), what="reference", overwrite=_flag(args, "force")
+        )
         what = f"reference decode written to {args.out}"
     notes = [f"{what} ({len(result.cams)} cams, {edges} edges)"]
     moved = [
@@ -705,7 +823,7 @@ def run_describe(args: argparse.Namespace, streams: Streams) -> int:
         desc = describe.describe_capture(args.capture, sample_rate=args.sample_rate, progress=bar)
     notes: list[str] = []
     if args.json:
-        write_json(desc.to_json(), args.json, stdout=streams.out)
+        write_json(desc.to_json(), args.json, stdout=streams.out, overwrite=_flag(args, "force"))
         if args.json != "-":
             notes.append(f"JSON written to {args.json}")
     console = _report_console(args, streams)
@@ -818,9 +936,15 @@ def run_simulate(args: argparse.Namespace, streams: Streams) -> int:
         scenario_path, out = files
         scenario = {**_load_scenario(scenario_path), **changes}
         source = f"scenario {scenario_path}"
-    _check_output_target(out, "capture file")
-    _check_output_target(args.truth, "truth file")
-    sim.write_scenario(scenario, out, truth_path=args.truth, teeth=args.teeth)
+    _check_output_target(out, "capture file", _flag(args, "force"))
+    _check_output_target(args.truth, "truth file", _flag(args, "force"))
+    answer = sim.write_scenario(scenario, out, teeth=args.teeth)
+    if args.truth:
+        from .output import dumps_json, write_atomic
+
+        write_atomic(
+            args.truth, dumps_json(answer), what="truth file", overwrite=_flag(args, "force")
+        )
     if not _flag(args, "quiet"):
         truth = f", true answer in {args.truth}" if args.truth else ""
         streams.err.write(f"wrote {out} from {source}{truth}\n")

@@ -16,6 +16,12 @@ channel:
 
 Samples are regrouped into fixed cells of :data:`CELL` samples by their index in the capture, so
 every figure is bit-for-bit the same whatever block size the source is read with.
+
+A decode needs the levels only to place its thresholds, and a full pass would cost as much as
+reading the capture again. :func:`estimate_levels` therefore takes them, for a long capture whose
+reader can read at any position, from :data:`WINDOWS` short windows spread evenly over it (the
+same number of samples as the percentile subsample); :class:`FiniteWatch` then catches NaN and
+infinite samples block by block during the decode instead.
 """
 
 from __future__ import annotations
@@ -28,7 +34,16 @@ import numpy as np
 from .errors import SignalError
 from .model import DEFAULT_BLOCK_SIZE, CaptureSource, ChannelLevels
 
-__all__ = ["CELL", "SUBSAMPLE_TARGET", "check_finite", "measure_levels", "subsample_step"]
+__all__ = [
+    "CELL",
+    "SUBSAMPLE_TARGET",
+    "FiniteWatch",
+    "check_finite",
+    "estimate_levels",
+    "measure_levels",
+    "subsample_step",
+    "window_starts",
+]
 
 #: samples per internal cell (cells start at multiples of this capture index)
 CELL = 1 << 16
@@ -38,6 +53,16 @@ SUBSAMPLE_TARGET = 1 << 18
 CLIP_SHARE = 1e-3
 #: median absolute deviation of a standard normal (0.6745) times sqrt(2) for a difference of two
 NOISE_DIVISOR = 0.6745 * math.sqrt(2.0)
+#: captures longer than this many samples get spread-window levels (see :func:`estimate_levels`)
+SPARSE_ABOVE = 1 << 22
+#: windows of the spread estimate, and samples in each (2**18 in all; each window costs a seek,
+#: so fewer longer ones)
+WINDOWS = 256
+WINDOW = 1024
+#: integer sample formats (soundfile subtypes, numpy type names): no NaN or infinity possible
+INTEGER_SUBTYPES = frozenset(
+    {"PCM_S8", "PCM_U8", "PCM_16", "PCM_24", "PCM_32", "int8", "int16", "int32", "uint8", "uint16"}
+)
 
 Progress = Callable[[int, int], None]
 
@@ -279,3 +304,144 @@ def check_finite(levels: tuple[ChannelLevels, ...], sample_rate: float | None = 
         f"channel {lv.name!r} has {lv.non_finite} NaN or infinite samples{where}{more}; repair "
         "the capture or record it again"
     )
+
+
+def window_starts(n_samples: int, windows: int = WINDOWS, length: int = WINDOW) -> np.ndarray:
+    """First sample of each window of the spread estimate: evenly spread from the start of the
+    capture to its end.
+
+    >>> window_starts(10_000, windows=5, length=100).tolist()
+    [0, 2475, 4950, 7425, 9900]
+    """
+    last = max(n_samples - length, 0)
+    return np.unique(np.round(np.linspace(0, last, windows)).astype(np.int64))
+
+
+def estimate_levels(
+    source: CaptureSource,
+    block_size: int = DEFAULT_BLOCK_SIZE,
+    progress: Progress | None = None,
+    sparse_above: int | None = None,
+) -> tuple[ChannelLevels, ...]:
+    """Level statistics for a decode, without reading a long capture twice.
+
+    A capture of at most ``sparse_above`` samples (default :data:`SPARSE_ABOVE`), or one whose
+    source cannot read at any position (no ``read_windows(starts, length)`` method), is measured
+    exactly (:func:`measure_levels`).
+    Longer ones are estimated from :data:`WINDOWS` windows of :data:`WINDOW` samples spread evenly
+    over the capture: every figure, minimum and maximum included, is that of the samples in the
+    windows (``n`` and ``subsample`` count them), and the noise comes from the differences of
+    neighbouring samples inside each window. The windows do not depend on the block size. When
+    a window holds NaN or infinite samples, or cannot be read, the exact pass is made instead,
+    so that its figures (and :func:`check_finite`'s sentence) name the first bad sample.
+
+    >>> import numpy as np
+    >>> class Source:                                  # a capture that can be read anywhere
+    ...     def __init__(self, x):
+    ...         self.x = x
+    ...         self.info = type("Info", (), {"n_samples": len(x), "n_channels": 1,
+    ...                                       "channels": ("crank",), "path": "memory"})
+    ...     def read_windows(self, starts, length):
+    ...         for s in starts:
+    ...             yield self.x[s : s + length]
+    >>> square = np.where(np.arange(1_000_000) % 100 < 50, 0.5, 4.5)[:, None]
+    >>> (lv,) = estimate_levels(Source(square), sparse_above=100_000)
+    >>> lv.n, lv.minimum, lv.maximum, lv.mean, lv.percentile(50)
+    (262144, 0.5, 4.5, 2.5, 2.5)
+    """
+    info = source.info
+    read = getattr(source, "read_windows", None)
+    limit = SPARSE_ABOVE if sparse_above is None else sparse_above
+    if read is None or info.n_samples <= limit:
+        return measure_levels(source, block_size, progress)
+    c = info.n_channels
+    try:
+        windows = read(window_starts(info.n_samples), WINDOW)
+        parts = [np.asarray(w, dtype=np.float64) for w in windows]
+    except Exception:  # the full pass reports what is wrong with the file, in its own words
+        return measure_levels(source, block_size, progress)
+    if not parts or any(p.ndim != 2 or p.shape[1] != c or p.shape[0] < 2 for p in parts):
+        return measure_levels(source, block_size, progress)
+    data = np.concatenate(parts)
+    if not np.isfinite(data).all():
+        return measure_levels(source, block_size, progress)
+    diffs = np.concatenate([np.abs(np.diff(p, axis=0)) for p in parts])
+    n = data.shape[0]
+    out = []
+    for j, name in enumerate(info.channels):
+        v = data[:, j]
+        lo, hi = float(v.min()), float(v.max())
+        if lo == hi:
+            mean, std = lo, 0.0
+        else:
+            mean, std = float(v.mean()), float(v.std())
+        need = CLIP_SHARE * n
+        at_lo = int(np.count_nonzero(v == lo))
+        at_hi = int(np.count_nonzero(v == hi))
+        at_lo = at_lo if at_lo >= need else 0
+        at_hi = at_hi if at_hi >= need else 0
+        out.append(
+            ChannelLevels(
+                name=name,
+                n=n,
+                minimum=lo,
+                maximum=hi,
+                mean=mean,
+                std=std,
+                percentiles=tuple(float(p) for p in np.percentile(v, ChannelLevels.POINTS)),
+                noise=float(np.median(diffs[:, j])) / NOISE_DIVISOR,
+                clipped_fraction=(at_lo if lo == hi else at_lo + at_hi) / n,
+                non_finite=0,
+                subsample=n,
+            )
+        )
+    if progress is not None:
+        progress(info.n_samples, info.n_samples)
+    return tuple(out)
+
+
+class FiniteWatch:
+    """Catches NaN and infinite samples while a capture streams through a decode.
+
+    Levels estimated from windows (:func:`estimate_levels`) can miss a bad sample; this looks at
+    every block (one sum per channel: NaN and infinity survive a sum) and, on the first bad block,
+    makes the exact levels pass so that the :class:`SignalError` names the first bad sample and
+    the count, as :func:`check_finite` does. Integer sample formats cannot hold such values and
+    are not looked at.
+
+    >>> import numpy as np
+    >>> from toothcomb.decoders.model import CaptureInfo
+    >>> class Source:
+    ...     info = CaptureInfo("memory", 1000.0, 3, ("ch0",), "hdf5", "float64")
+    ...     def blocks(self, block_size):
+    ...         from toothcomb.decoders.model import Block
+    ...         yield Block(0, np.array([[0.0], [np.nan], [1.0]]))
+    >>> watch = FiniteWatch(Source(), 4096)
+    >>> watch.check(np.zeros((5, 1)))
+    >>> try:
+    ...     watch.check(np.array([[0.0], [np.nan]]))
+    ... except SignalError as e:
+    ...     print(e)
+    channel 'ch0' has 1 NaN or infinite samples (first at sample 1, t = 0.001 s); repair the capture or record it again
+    """  # noqa: E501
+
+    def __init__(self, source: CaptureSource, block_size: int, active: bool = True) -> None:
+        self._source = source
+        self._block_size = block_size
+        #: False for integer sample formats (and when the levels were measured exactly)
+        self.active = active and source.info.subtype not in INTEGER_SUBTYPES
+
+    def check(self, data: np.ndarray) -> None:
+        """Raise :class:`SignalError` when ``data`` (samples, channels) holds a bad sample."""
+        if not self.active or data.size == 0:
+            return
+        with np.errstate(over="ignore", invalid="ignore"):
+            if np.isfinite(np.add.reduce(data, axis=0)).all():
+                return
+        if np.isfinite(data).all():  # the sum overflowed on large finite values
+            return
+        info = self._source.info
+        check_finite(measure_levels(self._source, self._block_size), info.sample_rate)
+        raise SignalError(  # the full pass found none: the block changed under us
+            f"{info.path}: NaN or infinite samples appeared while reading; read it again"
+        )

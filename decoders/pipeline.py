@@ -21,10 +21,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 
+from .actuators.pwm import PwmActuator, drive_side, steady_share
+from .analysis.actuator import analyse_valve
 from .analysis.cams import (
     CamEvents,
     build_cam_result,
@@ -37,13 +40,13 @@ from .analysis.identify import ChannelLook, look_at_channel
 from .analysis.jitter import CrankJitter, tooth_offsets
 from .analysis.phaser import with_phaser
 from .analysis.timeline import CamLocator
-from .errors import DecodeError, UsageError
-from .levels import check_finite, measure_levels
+from .errors import DecodeError, SignalError, UsageError
+from .levels import CLIP_SHARE, FiniteWatch, check_finite, estimate_levels
 from .model import CaptureInfo, CaptureSource, ChannelLevels, Edges
 from .options import DecodeOptions
-from .plugins import FRONTENDS, WHEELS, plugin, plugins
+from .plugins import ACTUATORS, FRONTENDS, WHEELS, plugin, plugins
 from .readers import open_capture
-from .result import CamResult, CrankResult, DecodeResult, Finding, RpmStats
+from .result import ActuatorResult, CamResult, CrankResult, DecodeResult, Finding, RpmStats
 from .wheels.base import ToothTrack
 from .wheels.missing_tooth import (
     MissingToothSpec,
@@ -69,6 +72,9 @@ MIN_SAMPLES_PER_TOOTH = 8.0
 #: fewer samples per tooth than this at the mean speed: the decode is refused, not guessed
 # common practice, no source: at 5 samples per tooth period a VR half-wave is 2.5 samples long
 SAMPLES_PER_TOOTH_REFUSED = 5.0
+#: edges the front ends gather, over as many blocks as it takes, before the tooth tracker, the
+#: cam locator and the statistics take them (results do not depend on it)
+EDGES_PER_HANDOVER = 8192
 #: most points kept in the per-tooth engine speed trace (longer captures are thinned by time)
 TRACE_POINTS = 50_000
 
@@ -284,16 +290,35 @@ class CrankStats:
             one = (p[1:][same] == 1) & (dp > 0)
             if np.any(one):
                 self.min_pitch_period = min(self.min_pitch_period, float(dt[one].min()))
-            mid = 0.5 * (t[1:] + t[:-1])[same]
-            for tm, v in zip(mid, rpm, strict=True):
-                if tm >= self._next_bucket:
-                    self.trace.append((float(tm), float(v)))
-                    self._next_bucket = (math.floor(tm / self._bucket) + 1) * self._bucket
+            self._thin(0.5 * (t[1:] + t[:-1])[same], rpm)
         for run in np.unique(r):
             sel = np.flatnonzero(r == run)
             span = self._span.setdefault(int(run), [float(t[sel[0]]), float(a[sel[0]]), 0.0, 0.0])
             span[2], span[3] = float(t[sel[-1]]), float(a[sel[-1]])
         self._last = (int(r[-1]), float(t[-1]), float(a[-1]), 0.0)
+
+    def _thin(self, mid: np.ndarray, rpm: np.ndarray) -> None:
+        """Add to the speed trace the first point at or after the start of each time bucket
+        after the bucket of the last point kept (``mid`` rises)."""
+        # where the bucket after each point's own starts, and the first point at or after it
+        bucket = np.floor(mid / self._bucket)
+        after = (bucket + 1) * self._bucket
+        nxt = np.maximum(np.searchsorted(mid, after, side="left"), np.arange(1, len(mid) + 1))
+        j = int(np.searchsorted(mid, self._next_bucket, side="left"))
+        if j >= len(mid):
+            return
+        # the points kept are, but for rounding at a bucket's edge, the first of each bucket:
+        # taken when following ``nxt`` from j confirms them
+        take = np.flatnonzero(bucket[1:] != bucket[:-1]) + 1
+        take = np.concatenate(([j], take[take > j]))
+        if not (np.array_equal(nxt[take[:-1]], take[1:]) and nxt[take[-1]] >= len(mid)):
+            follow = nxt.tolist()
+            chain = [j]
+            while (j := follow[j]) < len(mid):
+                chain.append(j)
+            take = np.array(chain)
+        self.trace.extend(zip(mid[take].tolist(), rpm[take].tolist(), strict=True))
+        self._next_bucket = float(after[take[-1]])
 
     @property
     def deg(self) -> float:
@@ -310,6 +335,9 @@ class CrankStats:
         return np.concatenate(self.refs) if self.refs else np.empty(0)
 
 
+#: a given wheel that shows more extra and missing teeth than this per revolution is the wrong
+#: wheel (a damaged tooth adds one per revolution, a runt one more; common practice, no source)
+HINT_ODD_PER_REV = 2.5
 #: fewest tooth positions of a crank wheel toothcomb looks for on its own
 MIN_POSITIONS = 4
 #: least share of revolutions that must agree on a wheel identified without a hint
@@ -390,6 +418,28 @@ def _frontend(look: ChannelLook, sample_rate: float, levels: ChannelLevels):
     return plugin(FRONTENDS, look.kind)(sample_rate, levels, **look.frontend_options)
 
 
+class _Clipped:
+    """A front end fed with the samples clipped to the channel's two plateaus: a solenoid's
+    flyback spike at each turn-off is cut off (it lies beyond a plateau), the midpoint crossing
+    of each flank is left exactly where it was."""
+
+    def __init__(self, inner: Any, levels: ChannelLevels) -> None:
+        self.inner = inner
+        lo, hi = levels.percentile(5), levels.percentile(95)
+        margin = 0.1 * (hi - lo)
+        self.lo, self.hi = lo - margin, hi + margin
+
+    @property
+    def settled_s(self) -> float:
+        return float(getattr(self.inner, "settled_s", 0.0))
+
+    def process(self, samples: np.ndarray, start: int) -> Edges:
+        return self.inner.process(np.clip(samples, self.lo, self.hi), start)
+
+    def finish(self) -> Edges:
+        return self.inner.finish()
+
+
 @dataclass
 class _CamState:
     """What is gathered about one cam channel during the streaming pass."""
@@ -432,25 +482,41 @@ def decode_capture(
         info = src.info
         fs = info.sample_rate
         lv_progress = (lambda d, t: progress("levels", d, t)) if progress else None
-        levels = measure_levels(src, opts.block_size, progress=lv_progress)
+        levels = estimate_levels(src, opts.block_size, progress=lv_progress)
         check_finite(levels, fs)
+        _check_recorded(levels, info)
+        # levels taken from windows may have missed a NaN: the blocks are watched instead
+        watch = FiniteWatch(src, opts.block_size, active=levels[0].n < info.n_samples)
         crank = info.channel_index(opts.crank) if opts.crank is not None else None
         cams = [info.channel_index(c) for c in opts.cams]
         if crank is not None and crank in cams:
             raise UsageError(f"channel {info.channels[crank]!r} is given as both crank and cam")
         if len(set(cams)) != len(cams):
             raise UsageError("the same cam channel is given twice")
+        valves = _valve_specs(opts.valves, info, crank, cams)
         n_probe = int(min(info.n_samples, PROBE_MAX_SAMPLES, max(1, PROBE_SECONDS * fs)))
         probe = read_probe(src, n_probe, opts.block_size)
+        watch.check(probe)
         used = (
-            sorted({crank, *cams} - {None})
+            sorted({crank, *cams, *valves} - {None})
             if (crank is not None and cams)
             else list(range(info.n_channels))
         )
         looks: dict[int, ChannelLook] = {}
         for c in used:
             hint = opts.crank_sensor if c == crank else opts.cam_sensor
+            if c in valves:
+                hint = "hall"
             looks[c] = look_at_channel(probe[:, c], fs, levels[c], hint=hint)
+        # a channel with spikes beyond one of two plateaus may be a valve's PWM (the flyback
+        # at each turn-off): it is also followed as one, and told apart once decoded
+        auto_valves = not opts.cams and not opts.valves
+        as_pwm = {
+            c: look_at_channel(probe[:, c], fs, levels[c], hint="hall")
+            for c in used
+            if auto_valves and c != crank and drive_side(levels[c])[0] is not None
+        }
+        clip_marks = _clip_marks(probe, levels, looks, info)
         del probe
         if crank is not None and looks[crank].kind in ("flat", "noise"):
             raise DecodeError(
@@ -480,6 +546,7 @@ def decode_capture(
                 break
             except DecodeError as exc:
                 if whole:
+                    _aliased(exc, head, looks, info, wheel, crank)
                     _too_coarse(exc, looks, crank, info)
                     raise
                 seconds *= 4.0
@@ -498,7 +565,11 @@ def decode_capture(
             )
         choices["wheel"] = f"{plan.spec.name}: {plan.how}"
         if not cams:
-            cams = [c for c in live if c != crank]
+            cams = [c for c in live if c != crank and c not in valves]
+        pwm_plugin = plugin(ACTUATORS, "pwm")
+        pwm = {v: pwm_plugin() for v in valves if v in live and looks[v].kind == "hall"}
+        # cam channels that may turn out to be a valve command (told apart once decoded)
+        maybe_pwm = {c: pwm_plugin() for c in cams if c in as_pwm}
         state: dict[int, _CamState] = {c: _CamState() for c in cams}
         for c in cams:
             if looks[c].kind == "vr":
@@ -515,10 +586,16 @@ def decode_capture(
                         )
                     )
         offsets, offset_findings = _tooth_offsets(head[crank], plan, info.channels[crank])
+        offset_findings += _clipped_teeth(clip_marks, head[crank], plan, info)
         del head
 
         # -- the whole capture, block by block --
-        frontends = {c: _frontend(looks[c], fs, levels[c]) for c in [crank, *cams] if c in live}
+        frontends = {
+            c: _frontend(looks[c], fs, levels[c]) for c in [crank, *cams, *pwm] if c in live
+        }
+        for c in pwm:
+            frontends[c] = _Clipped(frontends[c], levels[c])
+        pwm_fe = {c: _Clipped(_frontend(as_pwm[c], fs, levels[c]), levels[c]) for c in maybe_pwm}
         tracker = ToothTracker(plan.spec, offsets)
         locator = CamLocator(max_pitches=plan.spec.missing + 1)
         jitter = CrankJitter(plan.spec.pitch_deg)
@@ -528,6 +605,9 @@ def decode_capture(
         def take(edges: dict[int, Edges], teeth: ToothTrack) -> None:
             for c, e in edges.items():
                 if c == crank:
+                    continue
+                if c in pwm:
+                    pwm[c].add(e)
                     continue
                 st = state[c]
                 if st.direction_only is None:
@@ -540,17 +620,49 @@ def decode_capture(
             for c, ev in locator.add_teeth(teeth).items():
                 state[c].events.append(ev)
 
-        total = info.n_samples
-        for block in src.blocks(opts.block_size):
-            edges = {c: fe.process(block.data[:, c], block.start) for c, fe in frontends.items()}
+        # the per-edge stages take the edges of several blocks at once: what they find does
+        # not depend on how the edges are cut, and a call per block would cost more than the
+        # block's samples do
+        waiting: dict[int, list[Edges]] = {c: [] for c in frontends}
+
+        def hand_over() -> None:
+            edges = {c: Edges.concat(parts) for c, parts in waiting.items()}
+            for parts in waiting.values():
+                parts.clear()
             ce = edges[crank]
             teeth = tracker.feed(ce.times[ce.direction == plan.direction])
             take(edges, teeth)
             settled = [getattr(frontends[c], "settled_s", 0.0) for c in cams if c in frontends]
             locator.forget_before(min(settled, default=math.inf))
+
+        total = info.n_samples
+        held = 0
+        # integer PCM: the front ends find the edges on the codes as stored (the same edges, to
+        # the last bit, without a float made of every sample first)
+        scale = getattr(src, "code_scale", None)
+        by_codes = bool(scale) and all(hasattr(fe, "process_codes") for fe in frontends.values())
+        stream = src.code_blocks(opts.block_size) if by_codes else src.blocks(opts.block_size)
+        for block in stream:
+            watch.check(block.data)
+            for c, fe in frontends.items():
+                col = block.data[:, c]
+                e = fe.process_codes(col, block.start, scale) if by_codes else fe.process(
+                    col, block.start
+                )
+                waiting[c].append(e)
+                held += len(e)
+            for c, fe in pwm_fe.items():
+                col = block.data[:, c] * scale if by_codes else block.data[:, c]
+                maybe_pwm[c].add(fe.process(col, block.start))
+            if held >= EDGES_PER_HANDOVER:
+                hand_over()
+                held = 0
             if progress is not None:
                 progress("edges", block.stop, total)
+        hand_over()
         edges = {c: fe.finish() for c, fe in frontends.items()}
+        for c, fe in pwm_fe.items():
+            maybe_pwm[c].add(fe.finish())
         ce = edges[crank]
         teeth = tracker.feed(ce.times[ce.direction == plan.direction])
         take(edges, teeth)
@@ -582,15 +694,169 @@ def decode_capture(
             f"wheel: sync was lost {stats.losses} times in {revs:.0f} revolutions; check the "
             "wheel (--wheel), or leave it out to let toothcomb identify it"
         )
+    odd = stats.extra + stats.missing
+    if wheel is not None and odd >= 10 and odd > HINT_ODD_PER_REV * max(revs, 1.0):
+        raise DecodeError(
+            f"crank channel {info.channels[crank]!r} does not follow the {plan.spec.name} "
+            f"wheel: {stats.extra} extra and {stats.missing} missing teeth in {revs:.0f} "
+            "revolutions; check the wheel (--wheel), or leave it out to let toothcomb identify it"
+        )
     if len(refs) == 0:
         _too_coarse(DecodeError("no reference event"), looks, crank, info)
         raise DecodeError(
             f"no {plan.spec.name} gap found on crank channel {info.channels[crank]!r}; check the "
             "wheel (--wheel) and the channel (--crank)"
         )
+    valve_work = _Valves(valves, pwm, maybe_pwm, levels, opts.valve_drive)
     return _result(
-        info, plan, stats, jitter, cams, state, locator, looks, choices, fs, opts.phaser_parked
+        info, plan, stats, jitter, cams, state, locator, looks, choices, fs, opts.phaser_parked,
+        valve_work,
     )
+
+
+# --------------------------------------------------------------------------- valve channels
+
+
+@dataclass
+class _Valves:
+    """Valve command channels: which, the cam each drives (None: to be proposed), their PWM
+    collectors, and cam channels that may turn out to be valves."""
+
+    pairs: dict[int, int | None]
+    pwm: dict[int, PwmActuator]
+    maybe_pwm: dict[int, PwmActuator]
+    levels: list[ChannelLevels]
+    drive_hint: str | None
+    #: channels found to be valves without a hint, and why
+    found: dict[int, str] = field(default_factory=dict)
+
+
+def _valve_specs(specs: tuple[str, ...], info: CaptureInfo, crank: int | None,
+                 cams: list[int]) -> dict[int, int | None]:
+    """``CH`` or ``CH=CAM`` hints -> {valve channel: cam channel or None}."""
+    out: dict[int, int | None] = {}
+    for text in specs:
+        ch, sep, cam = text.partition("=")
+        v = info.channel_index(ch.strip())
+        c = info.channel_index(cam.strip()) if sep else None
+        if v == crank:
+            raise UsageError(f"channel {info.channels[v]!r} is given as both crank and valve")
+        if v in cams:
+            raise UsageError(f"channel {info.channels[v]!r} is given as both cam and valve")
+        if c is not None and (c == v or c == crank):
+            raise UsageError(
+                f"--valve {text!r}: a valve drives a cam; name a cam channel after '='"
+            )
+        if v in out:
+            raise UsageError(f"valve channel {info.channels[v]!r} is given twice")
+        out[v] = c
+    return out
+
+
+#: share of PWM periods within 0.3 % of their median for a channel to be a steady PWM
+PWM_STEADY = 0.95
+#: a cam's events, measured in crank degrees, are at least this steady
+CAM_LOCKED = 0.5
+
+
+def _pwm_not_cam(collector: PwmActuator, ev: CamEvents) -> str | None:
+    """Why a channel taken for a cam is a PWM valve command instead (None: it is a cam).
+
+    A PWM switches at a steady frequency of its own: its periods in time hardly vary while the
+    same periods in crank degrees follow every change of engine speed. A cam is the other way
+    round. When the engine speed does not vary at all the two cannot be told apart, and the
+    channel stays a cam (``--valve`` names it).
+    """
+    t, d = collector.edges()
+    rising = t[d > 0]
+    if len(rising) < 20 or steady_share(rising) < PWM_STEADY:
+        return None
+    angle = np.sort(ev.crank_angle[(ev.direction > 0) & (ev.run == np.bincount(ev.run).argmax())]
+                    ) if len(ev.times) else np.empty(0)
+    if len(angle) >= 3 and steady_share(angle) >= CAM_LOCKED:
+        return None
+    hz = 1.0 / float(np.median(np.diff(rising)))
+    return (
+        f"it switches at a steady {hz:.1f} Hz that does not follow the engine speed: read as a "
+        "valve command (PWM)"
+    )
+
+
+def _valve_results(
+    vw: _Valves, info: CaptureInfo, cams: list[CamResult], crank: CrankResult
+) -> tuple[list[CamResult], list[ActuatorResult], list[Finding]]:
+    """Decode each valve channel and pair it with the cam it drives."""
+    findings: list[Finding] = []
+    by_name = {c.channel: i for i, c in enumerate(cams)}
+    out: list[ActuatorResult] = []
+    lonely = len(vw.pairs) == 1
+    for v, cam_idx in vw.pairs.items():
+        name = info.channels[v]
+        if v in vw.found:
+            findings.append(
+                Finding("info", "valve-channel", f"channel {name!r}: {vw.found[v]}; name it "
+                        "with --valve if that is wrong")
+            )
+        if v not in vw.pwm:
+            findings.append(
+                Finding("warning", "valve-no-signal", f"valve channel {name!r} does not switch "
+                        "between two levels; no valve command was read")
+            )
+            continue
+        if vw.drive_hint:
+            drive, how = vw.drive_hint, "given by the user"
+        else:
+            drive, how = drive_side(vw.levels[v])
+        trace = vw.pwm[v].finish(drive)  # type: ignore[arg-type]
+        target: int | None = None
+        pairing = None
+        if cam_idx is not None:
+            target = by_name.get(info.channels[cam_idx])
+            pairing = "given"
+            if target is None:
+                findings.append(
+                    Finding("warning", "valve-cam-missing", f"valve channel {name!r} is paired "
+                            f"with {info.channels[cam_idx]!r}, which was not decoded as a cam")
+                )
+        elif lonely and cams:
+            target = max(range(len(cams)), key=lambda i: _activity(cams[i]))
+            pairing = "proposed"
+            findings.append(
+                Finding(
+                    "info",
+                    "valve-paired",
+                    f"valve channel {name!r} is taken to drive cam {cams[target].channel!r} "
+                    + ("(the only cam)" if len(cams) == 1 else "(the cam whose phase moved most)")
+                    + f"; name the pairing with --valve {name}=CAM if it drives another",
+                )
+            )
+        elif cams:
+            findings.append(
+                Finding("info", "valve-unpaired", f"valve channel {name!r}: several valves and "
+                        f"no pairing given; name it with --valve {name}=CAM")
+            )
+        cam = cams[target] if target is not None else None
+        result = analyse_valve(
+            trace, name, drive, how,
+            cam.phaser if cam is not None else None,
+            cam.channel if cam is not None else None,
+            pairing,
+            f"cam {cam.channel!r}" if cam is not None else None,
+        )
+        out.append(result)
+        if target is not None:
+            cams[target] = replace(cams[target], actuator=result)
+    return cams, out, findings
+
+
+def _activity(cam: CamResult) -> float:
+    """How much a cam's phase moved (largest travel, else the spread of its holds)."""
+    ph = cam.phaser
+    if ph is None:
+        return 0.0
+    if ph.moves:
+        return ph.authority_deg
+    return max((h.pp_deg for h in ph.holds), default=0.0)
 
 
 #: a tooth is placed at its measured angle when it sits this far (in pitches) from its nominal
@@ -657,6 +923,169 @@ def _sensor_choice(look: ChannelLook) -> str:
     return f"{look.kind} (confidence {look.confidence:.2f}): {look.reason}"
 
 
+# --------------------------------------------------------------------------- guard rails
+
+#: a cam pattern is looked for over at most this many edge intervals
+CAM_PERIOD_MAX = 8
+#: fewest engine cycles a capture should span (each cam edge seen twice, cycle phase fixed)
+# common practice, no source
+MIN_CYCLES = 2.0
+#: share of the crank teeth that must sit flat at the converter's limit for a clipping warning
+# common practice, no source: "most teeth"
+CLIPPED_TEETH_SHARE = 0.5
+
+
+def _check_recorded(levels: tuple[ChannelLevels, ...], info: CaptureInfo) -> None:
+    """Refuse (exit 2) a capture of one sample, or one whose every channel holds one value
+    throughout: nothing was recorded. Only when the levels cover every sample."""
+    if info.n_samples < 2:
+        raise SignalError(
+            f"{info.path} holds a single sample; a decode needs a recording of at least two "
+            "engine cycles: record for longer"
+        )
+    if not levels or min(lv.n for lv in levels) < info.n_samples:
+        return
+    if all(lv.maximum == lv.minimum for lv in levels):
+        values = ", ".join(f"{lv.name} = {lv.minimum:.6g}" for lv in levels[:4])
+        raise SignalError(
+            f"every channel of {info.path} holds one value throughout ({values}, over all "
+            f"{info.n_samples} samples): nothing was recorded; check the probes and the inputs "
+            "and record again"
+        )
+
+
+def _clip_marks(
+    probe: np.ndarray,
+    levels: tuple[ChannelLevels, ...],
+    looks: dict[int, ChannelLook],
+    info: CaptureInfo,
+) -> dict[int, tuple[np.ndarray, float]]:
+    """For each channel that clips (a VR sensor flat at its extreme, or any sensor flat at the
+    converter's full scale): which probe samples sit at the clip level, and that level."""
+    out: dict[int, tuple[np.ndarray, float]] = {}
+    for c, look in looks.items():
+        lv = levels[c]
+        if look.kind not in ("hall", "vr") or lv.maximum <= lv.minimum:
+            continue
+        x = probe[:, c]
+        fs_c = info.full_scale[c] if c < len(info.full_scale) else math.nan
+        marks = np.zeros(len(x), dtype=bool)
+        level = math.nan
+        for end in (lv.maximum, lv.minimum):
+            at = x == end
+            at_limit = math.isfinite(fs_c) and abs(end) >= fs_c * (1 - 2.0**-14)
+            if np.mean(at) >= CLIP_SHARE and (look.kind == "vr" or at_limit):
+                marks |= at
+                level = end if math.isnan(level) else level
+        if marks.any():
+            out[c] = (marks, level)
+    return out
+
+
+def _clipped_teeth(
+    marks: dict[int, tuple[np.ndarray, float]], edges: Edges, plan: CrankPlan, info: CaptureInfo
+) -> list[Finding]:
+    """A warning when most crank teeth of the first seconds sit flat at the clip level (two or
+    more samples in a row at it within the tooth period)."""
+    if plan.channel not in marks:
+        return []
+    at, level = marks[plan.channel]
+    t = edges.times[edges.direction == plan.direction]
+    idx = np.clip(np.round(t * info.sample_rate).astype(np.int64), 0, len(at))
+    if len(idx) < 3:
+        return []
+    # run[k]: samples before k that sit at the clip level together with the one before them
+    run = np.concatenate(([0], np.cumsum(np.concatenate(([False], at[1:] & at[:-1])))))
+    flat = run[idx[1:]] - run[idx[:-1]] > 0
+    share = float(np.mean(flat))
+    if share <= CLIPPED_TEETH_SHARE:
+        return []
+    name = info.channels[plan.channel]
+    unit = info.units[plan.channel] if plan.channel < len(info.units) else ""
+    return [
+        Finding(
+            "warning",
+            "clipping",
+            f"crank channel {name!r} is clipped on {int(flat.sum())} of {len(flat)} teeth "
+            f"({share:.0%}) in the first {len(at) / info.sample_rate:.3g} s: it sits flat at "
+            f"{level:+.6g}{(' ' + unit) if unit else ''}; flanks and zero crossings still time "
+            "the teeth, but the input is overdriven: lower its level (a divider) so the tooth "
+            "shapes are recorded",
+        )
+    ]
+
+
+def _cam_pattern_period(t: np.ndarray) -> float | None:
+    """Seconds after which the intervals between one direction's cam edges repeat (the shortest
+    lag of up to :data:`CAM_PERIOD_MAX` intervals that fits all of them within 5 %), or None."""
+    d = np.diff(t)
+    for m in range(1, CAM_PERIOD_MAX + 1):
+        if len(d) < 2 * m + 1:
+            return None
+        if np.all(np.abs(d[m:] - d[:-m]) <= 0.05 * d[m:]):
+            return float(np.median(np.convolve(d, np.ones(m), "valid")))
+    return None
+
+
+def _aliased(
+    exc: DecodeError,
+    edges: dict[int, Edges],
+    looks: dict[int, ChannelLook],
+    info: CaptureInfo,
+    wheel: MissingToothSpec | None,
+    crank: int | None,
+) -> None:
+    """Replace a failure by the sentence about aliasing when a cam shows an engine speed at which
+    the given wheel's tooth frequency lies above half the sample rate.
+
+    The cam turns once per engine cycle and is slow enough to be sampled well; taking its
+    pattern to repeat once per cycle, the speed it shows sets the crank's tooth frequency. A
+    tooth frequency above half the sample rate cannot be recorded: it shows folded to a lower
+    one (source: Nyquist-Shannon sampling theorem; Shannon, Proc. IRE 37 (1949) 10-21).
+    """
+    if wheel is None:
+        return
+    fs = info.sample_rate
+    busiest = crank if crank is not None else max(edges, key=lambda c: len(edges[c]))
+    for c, e in edges.items():
+        if c == busiest or looks[c].kind not in ("hall", "vr"):
+            continue
+        period = _cam_pattern_period(e.times[e.direction == 1])
+        if period is None or period <= 0:
+            continue
+        rpm = 120.0 / period
+        teeth = rpm / 60.0 * wheel.positions
+        if teeth <= fs / 2:
+            continue
+        raise DecodeError(
+            f"cam channel {info.channels[c]!r} repeats every {period:.4g} s, {rpm:.0f} rpm at "
+            f"one pattern per engine cycle, when the {wheel.name} crank wheel passes "
+            f"{teeth:.0f} teeth per second, above half the {fs:g} Hz sample rate: the crank "
+            f"signal is aliased (its teeth show folded to a lower frequency); record at "
+            f"{_rate_needed(teeth):g} Hz or more"
+        ) from exc
+
+
+def _short_capture(info: CaptureInfo, mean_rpm: float) -> list[Finding]:
+    """A warning when the capture spans fewer than :data:`MIN_CYCLES` engine cycles."""
+    if not (mean_rpm > 0):
+        return []
+    cycle_s = 120.0 / mean_rpm
+    cycles = info.duration_s / cycle_s
+    if cycles >= MIN_CYCLES:
+        return []
+    return [
+        Finding(
+            "warning",
+            "short-capture",
+            f"the capture lasts {info.duration_s:.3g} s, {cycles:.2f} engine cycles at the mean "
+            f"{mean_rpm:.0f} rpm (one cycle, 720 deg CA, takes {cycle_s:.3g} s); at least "
+            f"{MIN_CYCLES:g} are needed to see each cam edge more than once: record for "
+            f"{MIN_CYCLES * cycle_s:.2g} s or longer",
+        )
+    ]
+
+
 def _too_coarse(
     exc: DecodeError, looks: dict[int, ChannelLook], crank: int | None, info: CaptureInfo
 ) -> None:
@@ -686,6 +1115,7 @@ def _result(
     choices: dict[str, str],
     fs: float,
     parked: bool = False,
+    valve_work: _Valves | None = None,
 ) -> DecodeResult:
     crank_findings: list[Finding] = list(plan.findings) + stats.findings
     mean_rpm = stats.deg / stats.sec / 6.0 if stats.sec > 0 else float("nan")
@@ -707,6 +1137,7 @@ def _result(
                 f"least {MIN_SAMPLES_PER_TOOTH:g} are needed for precise timing",
             )
         )
+    crank_findings += _short_capture(info, mean_rpm)
     if stats.sec > 0:
         rpm = RpmStats(stats.rpm_min, mean_rpm, stats.rpm_max)
     else:
@@ -739,6 +1170,14 @@ def _result(
                                    cols[4])
         else:
             located[c] = CamEvents.empty()
+    vw = valve_work or _Valves({}, {}, {}, [], None)
+    for c, collector in vw.maybe_pwm.items():
+        why = _pwm_not_cam(collector, located[c])
+        if why is not None:
+            cams = [x for x in cams if x != c]
+            vw.pwm[c] = collector
+            vw.pairs[c] = None
+            vw.found[c] = why
     for c in cams:
         st = state[c]
         if st.direction_only is None and st.total_s > 0:
@@ -800,14 +1239,23 @@ def _result(
         )
         cam_results.append(with_phaser(cam, crank_result.rpm_trace, parked=parked))
         choices[f"cam {name}"] = _sensor_choice(looks[c])
+    actuators: list[ActuatorResult] = []
+    if vw.pairs:
+        cam_results, actuators, more = _valve_results(vw, info, cam_results, crank_result)
+        global_findings.extend(more)
     for c in looks:
-        if c != plan.channel and c not in cams and looks[c].kind in ("flat", "noise"):
+        if c != plan.channel and c not in cams and c not in vw.pairs and looks[c].kind in (
+            "flat", "noise"
+        ):
             global_findings.append(
                 Finding(
                     "info", "channel-unused", f"channel {info.channels[c]!r}: {looks[c].reason}"
                 )
             )
-    return DecodeResult(info, crank_result, tuple(cam_results), tuple(global_findings), choices)
+    return DecodeResult(
+        info, crank_result, tuple(cam_results), tuple(global_findings), choices,
+        actuators=tuple(actuators),
+    )
 
 
 __all__ = ["ChannelLevels", "DecodeOptions", "decode_capture", "read_probe"]

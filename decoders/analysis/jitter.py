@@ -198,7 +198,8 @@ class CrankJitter:
         # until the run ends, a window must stay clear of the last two teeth, whose fill can
         # still change as teeth arrive
         last_ok = centre[-1] if final else g[-2] - h - 1
-        seen = np.isin(g, centre) & (g > self._done) & (g <= last_ok)
+        # (centre is a run of consecutive positions: "in it" is a range check)
+        seen = (g >= centre[0]) & (g <= centre[-1]) & (g > self._done) & (g <= last_ok)
         if np.any(seen):
             j = g[seen] - centre[0]
             tie = t[seen] - ideal[j]

@@ -42,6 +42,10 @@ class FrontEnd(Protocol):
         ...
 
 
+#: offsets of the four samples a cubic crossing is fitted through, from the sample before it
+NEIGHBOURS = np.arange(-1, 3)
+
+
 def cubic_crossing(y: np.ndarray, k: np.ndarray, level: float | np.ndarray) -> np.ndarray:
     """Fraction of a sample, after ``k``, where the samples cross ``level`` (0 <= f <= 1).
 
@@ -49,40 +53,52 @@ def cubic_crossing(y: np.ndarray, k: np.ndarray, level: float | np.ndarray) -> n
     [0, 1] by Newton iterations started from the linear estimate. Where a neighbour is missing
     (``k - 1 < 0`` or ``k + 2 >= len(y)``) or the cubic misbehaves, the linear estimate is kept.
     The crossing lies at ``k + fraction``; the fraction is returned on its own so that adding
-    a block's offset cannot round differently from block to block.
+    a block's offset cannot round differently from block to block. ``y`` may hold integers
+    (a converter's codes): only the samples used are turned into floats.
 
     >>> t = np.arange(8.0)
     >>> y = np.sin(2 * np.pi * (t - 2.3) / 16)   # rising zero crossing at 2.3
     >>> round(float(cubic_crossing(y, np.array([2]), 0.0)[0]), 3)
     0.3
     """
-    y = np.asarray(y, dtype=float)
-    k = np.asarray(k, dtype=int)
-    lev = np.broadcast_to(np.asarray(level, dtype=float), k.shape)
-    y1 = y[k] - lev
-    y2 = y[k + 1] - lev
+    y = np.asarray(y)
+    k = np.asarray(k, dtype=np.intp)
+    near = np.clip(k[None, :] + NEIGHBOURS[:, None], 0, max(len(y) - 1, 0))
+    lev = float(level) if np.ndim(level) == 0 else np.broadcast_to(level, k.shape)
+    return cubic_fraction(y[near] - lev, (k - 1 >= 0) & (k + 2 < len(y)))
+
+
+def cubic_fraction(near: np.ndarray, ok: np.ndarray) -> np.ndarray:
+    """The crossing fraction of :func:`cubic_crossing` from the four samples around each
+    crossing, less the level: ``near`` has rows y[k-1], y[k], y[k+1], y[k+2]; where ``ok`` is
+    False the first or last of them is not a real neighbour and the linear estimate is kept.
+
+    >>> y = np.sin(2 * np.pi * (np.arange(1.0, 5.0) - 2.3) / 16)[:, None]
+    >>> round(float(cubic_fraction(y, np.array([True]))[0]), 3)
+    0.3
+    """
+    y0, y1, y2, y3 = near
     denom = y2 - y1
     with np.errstate(divide="ignore", invalid="ignore"):
         lin = np.where(denom != 0, -y1 / denom, 0.5)
-    lin = np.clip(lin, 0.0, 1.0)
-    ok = (k - 1 >= 0) & (k + 2 < len(y))
+    lin = np.minimum(np.maximum(lin, 0.0), 1.0)
     if not np.any(ok):
         return lin
-    kk = np.where(ok, k, 1)
-    y0 = y[kk - 1] - lev
-    y3 = y[np.minimum(kk + 2, len(y) - 1)] - lev
     # Cubic through (-1, y0), (0, y1), (1, y2), (2, y3): p(s) = a + b s + c s^2 + d s^3
     a = y1
     b = -y0 / 3 - y1 / 2 + y2 - y3 / 6
     c = y0 / 2 - y1 + y2 / 2
     d = -y0 / 6 + y1 / 2 - y2 / 2 + y3 / 6
     s = lin.copy()
-    for _ in range(6):
-        p = a + s * (b + s * (c + s * d))
-        dp = b + s * (2 * c + s * 3 * d)
-        with np.errstate(divide="ignore", invalid="ignore"):
+    c2 = 2 * c
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for _ in range(6):
+            p = a + s * (b + s * (c + s * d))
+            dp = b + s * (c2 + s * 3 * d)
             step = np.where(dp != 0, p / dp, 0.0)
-        s = s - step
+            if not np.count_nonzero(step):
+                break  # converged: further steps change nothing
+            s = s - step
     good = ok & np.isfinite(s) & (s >= 0.0) & (s <= 1.0)
     return np.where(good, s, lin)
 
@@ -93,8 +109,8 @@ def linear_crossing(y: np.ndarray, k: np.ndarray, level: np.ndarray) -> np.ndarr
     >>> linear_crossing(np.array([0.0, 1.0, 3.0]), np.array([1]), np.array([2.0]))
     array([0.5])
     """
-    y1 = y[k]
-    y2 = y[k + 1]
+    y1 = np.asarray(y[k], dtype=float)  # integer codes: no wrap-around in the difference
+    y2 = np.asarray(y[k + 1], dtype=float)
     denom = y2 - y1
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(denom != 0, (level - y1) / denom, 0.5)

@@ -30,21 +30,15 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import despike, has_spikes, linear_crossing
+from .base import despike, has_spikes
 
+#: flank candidates gathered (over as many blocks as it takes) before they are judged and timed
+#: together: the per-flank work is done in few, long numpy passes
+FLANKS_PER_TIMING = 512
 #: time a Hall output needs to switch, covered by the step window W (seconds)
 # common practice, no source: sensor output rise/fall times of a few microseconds plus an
 # instrument's anti-alias response fit well inside 25 us
 TRANSITION_S = 25e-6
-
-
-def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Start and end (inclusive) indices of the runs of True in ``mask``."""
-    m = np.concatenate(([False], mask, [False]))
-    dm = np.diff(m.astype(np.int8))
-    starts = np.flatnonzero(dm == 1)
-    ends = np.flatnonzero(dm == -1) - 1
-    return starts, ends
 
 
 class HallFrontEnd:
@@ -61,6 +55,7 @@ class HallFrontEnd:
     """
 
     name = "hall"
+    handles = "Hall and other two-level (digital) sensors: flank times"
 
     def __init__(
         self,
@@ -89,6 +84,16 @@ class HallFrontEnd:
         #: samples after a flank at which the new level must still hold (a spike's decay
         #: does not); 0 checks only right after the flank
         self.persist = max(0, int(persist))
+        #: samples after (before) a flank at which the new (old) level must still hold
+        self._reach = np.unique(
+            np.linspace(1, self.persist, min(self.persist, 64)).round().astype(int)
+        )[None, :]
+        #: sample offsets of the level windows before and after a flank
+        self._plateau_offsets = np.arange(self.plateau)[None, :]
+        #: flanks waiting to be timed, per block: first sample of the run, run length - 1,
+        #: direction, step height, midpoint level, [its stretch as recorded (, cleaned)]
+        self._pend: list[tuple[np.ndarray, ...]] = []
+        self._waiting = 0
         self._keep = (
             self.window + self.plateau + self.max_run + 4 + 2 * self._half + 2 * self.persist
         )
@@ -99,6 +104,12 @@ class HallFrontEnd:
         self._buf = np.empty(0)
         self._buf_start = 0
         self._done = 0  # runs starting before this global index have been handled
+        #: value of one unit of the samples fed (1.0 for floats; a PCM code's value), set by the
+        #: first block; the thresholds in those units
+        self._unit: float | None = None
+        self._ints = False
+        self._thr = self.threshold
+        self._thr_steps: float = self.threshold
 
     @classmethod
     def calibrate(
@@ -149,7 +160,29 @@ class HallFrontEnd:
         return opts
 
     def process(self, samples: np.ndarray, start: int) -> Edges:
-        samples = np.asarray(samples, dtype=float)
+        return self._process(np.asarray(samples, dtype=float), start, 1.0)
+
+    def process_codes(self, codes: np.ndarray, start: int, scale: float) -> Edges:
+        """As :meth:`process`, for integer samples whose values are ``codes * scale``, ``scale``
+        a power of two (the codes of a PCM file): the same edges, to the last bit, without
+        turning every sample into a float (every threshold is divided by ``scale`` instead,
+        which is exact)."""
+        codes = np.asarray(codes)
+        if codes.dtype.kind not in "iu":
+            raise TypeError(f"process_codes takes integer samples, not {codes.dtype}")
+        return self._process(codes, start, float(scale))
+
+    def _process(self, samples: np.ndarray, start: int, unit: float) -> Edges:
+        ints = samples.dtype.kind in "iu"
+        if self._unit is None:
+            self._unit = unit
+            self._ints = ints
+            #: the step threshold in the units of the samples; integer steps exceed it exactly
+            #: when they exceed its floor
+            self._thr = self.threshold / unit
+            self._thr_steps = min(math.floor(self._thr), 2**31 - 1) if ints else self._thr
+        elif unit != self._unit or ints != self._ints:
+            raise ValueError("a front end is fed floats or codes of one scale, not both")
         if len(self._buf) == 0:
             self._buf_start = start
         buf = np.concatenate((self._buf, samples)) if len(self._buf) else samples
@@ -168,99 +201,145 @@ class HallFrontEnd:
     @property
     def settled_s(self) -> float:
         """No edge earlier than this time (s) will come out of later calls."""
-        return self._buf_start / self.sample_rate
+        first = self._buf_start
+        if self._pend:
+            first = min(first, int(self._pend[0][0][0]) - self.window)
+        return first / self.sample_rate
 
     def finish(self) -> Edges:
-        out = self._scan(self._buf, final=True) if len(self._buf) else Edges.empty()
+        out = self._scan(self._buf, final=True)
         self._buf = np.empty(0)
         return out
 
     # -- internals -------------------------------------------------------------------------
 
     def _scan(self, raw: np.ndarray, final: bool) -> Edges:
+        """Find the flanks of ``raw`` (samples from :attr:`_buf_start`) and keep the stretch of
+        samples each is timed in; they are timed by :meth:`_time_pending`, several blocks at
+        once (once :data:`FLANKS_PER_TIMING` wait, or at the end)."""
         W, w, half = self.window, self.plateau, self._half
         n = len(raw)
-        if n <= W + 2 * w + 1 + 2 * half:
+        if n > W + 2 * w + 1 + 2 * half:
+            self._find(raw, final, n)
+        if self._waiting < FLANKS_PER_TIMING and not final:
             return Edges.empty()
+        return self._time_pending()
+
+    def _find(self, raw: np.ndarray, final: bool, n: int) -> None:
+        W, w, half = self.window, self.plateau, self._half
         buf = despike(raw, self.despike)
-        d = buf[W:] - buf[:-W]  # d[i] belongs to buf index i + W
-        parts = []
-        for sign in (1, -1):
-            s, e = _runs(sign * d > self.threshold)
-            s = s + W
-            e = e + W
-            parts.append((s, e, np.full(len(s), sign, dtype=np.int8)))
-        s = np.concatenate([p[0] for p in parts])
-        e = np.concatenate([p[1] for p in parts])
-        sign = np.concatenate([p[2] for p in parts])
-        order = np.argsort(s, kind="stable")
-        s, e, sign = s[order], e[order], sign[order]
+        # d[i] belongs to buf index i + W (codes: in 32 bits, so that no step wraps around)
+        d = np.subtract(buf[W:], buf[:-W], dtype=np.int32 if self._ints else None)
+        s, e, sign = _step_runs(d, self._thr_steps)
+        s = s + W
+        e = e + W
         g = self._buf_start
         # a run is complete when the sample after it and the post-flank plateau are here
         P = self.persist
         complete = (e + w + half + P < n - 1) | final
         fresh = s + g >= self._done
-        enough = (s - W - w - half - P >= 0) & (e + w + P < n)
-        sel = complete & fresh & enough
         # runs that are complete but lack history (start of capture) are given up for good
-        if np.any(complete & fresh):
-            last = int(np.max(np.flatnonzero(complete & fresh)))
-            self._done = max(self._done, int(e[last]) + g + 1)
+        done = np.flatnonzero(complete & fresh)
+        if len(done):
+            self._done = max(self._done, int(e[done[-1]]) + g + 1)
+        enough = (s - W - w - half - P >= 0) & (e + w + P < n)
+        sel = complete & fresh & enough & ((e - s + 1) <= self.max_run)
+        if not sel.any():
+            return
         s, e, sign = s[sel], e[sel], sign[sel]
-        ok = (e - s + 1) <= self.max_run
-        s, e, sign = s[ok], e[ok], sign[ok]
-        if len(s) == 0:
-            return Edges.empty()
-        ar = np.arange(w)
-        pre_i = (s - W - w + 1)[:, None] + ar[None, :]
-        post_i = (e + 1)[:, None] + ar[None, :]
-        level = _median if w >= 3 else _mean
-        lo, hi = level(buf[pre_i]), level(buf[post_i])
+        pre_i = (s - W - w + 1)[:, None] + self._plateau_offsets
+        post_i = (e + 1)[:, None] + self._plateau_offsets
+        level = _median3 if w >= 3 else _mean
+        lo, hi = level(_floats(buf[pre_i])), level(_floats(buf[post_i]))
         step = (hi - lo) * sign
-        keep = step > self.threshold
-        s, e, sign, lo, hi, step = s[keep], e[keep], sign[keep], lo[keep], hi[keep], step[keep]
-        pre_i, post_i = pre_i[keep], post_i[keep]
-        if len(s) == 0:
-            return Edges.empty()
+        keep = step > self._thr
+        if not keep.all():
+            s, e, sign, lo, hi, step = s[keep], e[keep], sign[keep], lo[keep], hi[keep], step[keep]
+            pre_i, post_i = pre_i[keep], post_i[keep]
+            if len(s) == 0:
+                return
         if P > 0:
             # the new level must still hold later on (a spike's tail has gone by then)
             # ... and the old one must have held before it (a spike's tail, seen as a step
             # down, starts from a level that was not there a moment earlier): the samples (up
             # to 64 spread over the span) stay on their side of the midpoint, but for a few
             # (another spike may fall in the span)
-            mid0 = 0.5 * (lo + hi)[:, None]
-            reach = np.unique(np.linspace(1, P, min(P, 64)).round().astype(int))
-            after = buf[post_i[:, -1:] + reach[None, :]]
-            before = buf[pre_i[:, :1] - reach[None, :]]
-            held = (np.mean((after - mid0) * sign[:, None] > 0, axis=1) >= 0.8) & (
-                np.mean((before - mid0) * sign[:, None] < 0, axis=1) >= 0.8
-            )
-            for d in (1, -1):
-                self.rejected[d] += int(np.count_nonzero(~held & (sign == d)))
-            s, e, sign, lo, hi, step = s[held], e[held], sign[held], lo[held], hi[held], step[held]
-            pre_i, post_i = pre_i[held], post_i[held]
-            if len(s) == 0:
-                return Edges.empty()
-        # levels as recorded, unless a spike sits in them (then the cleaned ones)
-        lo_raw, hi_raw = level(raw[pre_i]), level(raw[post_i])
-        clean = (np.abs(lo_raw - lo) < 0.1 * step) & (np.abs(hi_raw - hi) < 0.1 * step)
-        lo = np.where(clean, lo_raw, lo)
-        hi = np.where(clean, hi_raw, hi)
-        mid = 0.5 * (lo + hi)
-        # the flank: last crossing of the midpoint inside [s - W, e + 1]
-        span = int(np.max(e - s)) + W + 2
-        idx = (s - W)[:, None] + np.arange(span)[None, :]
-        inside = idx <= (e + 1)[:, None]
-        idx = np.minimum(idx, n - 1)
-        # the time comes from the samples as recorded (the running median only found the flank
-        # and measured the levels); where a spike sits right on the flank, from the cleaned ones
-        k_raw, ok_raw = _last_crossing(raw, idx, inside, mid, sign, s, W)
-        k_med, _ = _last_crossing(buf, idx, inside, mid, sign, s, W)
-        pos_raw = (k_raw + g) + linear_crossing(raw, k_raw, mid)
-        pos_med = (k_med + g) + linear_crossing(buf, k_med, mid)
-        pos = np.where(ok_raw, pos_raw, pos_med)
+            mid0 = 0.5 * (lo + hi)
+            reach = self._reach
+            nr = reach.shape[1]
+            after = _beyond(buf[post_i[:, -1:] + reach], mid0, sign)
+            before = _beyond(buf[pre_i[:, :1] - reach], mid0, -sign)
+            held = (after / nr >= 0.8) & (before / nr >= 0.8)
+            if not held.all():
+                for d in (1, -1):
+                    self.rejected[d] += int(np.count_nonzero(~held & (sign == d)))
+                s, e, sign, lo, hi, step = (
+                    s[held], e[held], sign[held], lo[held], hi[held], step[held]
+                )
+                pre_i, post_i = pre_i[held], post_i[held]
+                if len(s) == 0:
+                    return
+        spiky = buf is not raw
+        if spiky:
+            # levels as recorded, unless a spike sits in them (then the cleaned ones)
+            lo_raw, hi_raw = level(_floats(raw[pre_i])), level(_floats(raw[post_i]))
+            clean = (np.abs(lo_raw - lo) < 0.1 * step) & (np.abs(hi_raw - hi) < 0.1 * step)
+            lo = np.where(clean, lo_raw, lo)
+            hi = np.where(clean, hi_raw, hi)
+        # the stretch the flank crosses its midpoint in, [s - W, e + 1] (and on, to the
+        # longest one's length); the time comes from the samples as recorded (the running median
+        # only found the flank and measured the levels), from the cleaned ones where a spike sits
+        # on it
+        at = np.minimum((s - W)[:, None] + np.arange(int(np.max(e - s)) + W + 2), n - 1)
+        stretch = [_floats(raw[at])] + ([_floats(buf[at])] if spiky else [])
+        self._pend.append((s + g, e - s, sign, step, 0.5 * (lo + hi), stretch))
+        self._waiting += len(s)
+
+    def _time_pending(self) -> Edges:
+        """Time the flanks found so far: where each crosses the midpoint of its two levels."""
+        if not self._pend:
+            return Edges.empty()
+        W = self.window
+        cols = list(zip(*self._pend, strict=True))
+        s, width, sign, step, mid = (np.concatenate(c) for c in cols[:5])
+        span = max(x[0].shape[1] for x in cols[5])
+        stretch = [
+            np.concatenate([_pad_right(x, span) for x in parts])
+            for parts in zip(*cols[5], strict=True)
+        ]
+        self._pend, self._waiting = [], 0
+        # the last crossing of the midpoint inside [s - W, e + 1]
+        inside = np.arange(span)[None, :] <= (width + W + 1)[:, None]
+        k, ok = _last_crossing(stretch[0], inside, mid, sign, W)
+        pos = (s - W + k) + _linear_at(stretch[0], k, mid)
+        if len(stretch) > 1 and not ok.all():
+            k_med, _ = _last_crossing(stretch[1], inside, mid, sign, W)
+            pos_med = (s - W + k_med) + _linear_at(stretch[1], k_med, mid)
+            pos = np.where(ok, pos, pos_med)
         pos, sign, step = self._ordered(pos, sign, step)
-        return Edges(pos / self.sample_rate, sign, step)
+        return Edges(pos / self.sample_rate, sign, step * self._unit)
+
+
+def _step_runs(d: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Runs of ``d > threshold`` (rising, +1) and of ``-d > threshold`` (falling, -1): first and
+    last index (inclusive) and direction of each, in order. Steps are rare, so the samples are
+    looked at in three passes and only the few indices over the threshold are grouped.
+
+    >>> s, e, sign = _step_runs(np.array([0, 3, 3, 0, -3, 3, 0.0]), 1.0)
+    >>> s.tolist(), e.tolist(), sign.tolist()
+    ([1, 4, 5], [2, 4, 5], [1, -1, 1])
+    """
+    idx = np.flatnonzero(np.abs(d) > threshold)
+    if len(idx) == 0:
+        empty = np.empty(0, dtype=np.intp)
+        return empty, empty, np.empty(0, dtype=np.int8)
+    up = d[idx] > 0
+    # a run ends where the next index over the threshold is not the next sample, or steps the
+    # other way
+    brk = (np.diff(idx) != 1) | (up[1:] != up[:-1])
+    first = np.concatenate(([0], np.flatnonzero(brk) + 1))
+    last = np.concatenate((first[1:] - 1, [len(idx) - 1]))
+    return idx[first], idx[last], np.where(up[first], 1, -1).astype(np.int8)
 
 
 def _ordered_edges(
@@ -272,6 +351,13 @@ def _ordered_edges(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, tuple[float, int] | None]:
     """Drop flanks that do not come strictly after the previous one, or that repeat its
     direction within ``min_gap`` samples (the same flank found twice)."""
+    if len(pos) == 0:
+        return pos, sign, step, last
+    # the usual case: every flank comes after the one before it (then all are kept)
+    prev_pos = np.concatenate(([last[0] if last is not None else -np.inf], pos[:-1]))
+    prev_sign = np.concatenate(([last[1] if last is not None else 0], sign[:-1]))
+    if np.all((pos > prev_pos) & ~((sign == prev_sign) & (pos - prev_pos < min_gap))):
+        return pos, sign, step, (float(pos[-1]), int(sign[-1]))
     keep = np.ones(len(pos), dtype=bool)
     for i in range(len(pos)):
         if last is not None and (
@@ -283,8 +369,32 @@ def _ordered_edges(
     return pos[keep], sign[keep], step[keep], last
 
 
-def _median(x: np.ndarray) -> np.ndarray:
-    return np.median(x, axis=1)
+def _beyond(x: np.ndarray, level: np.ndarray, sign: np.ndarray) -> np.ndarray:
+    """Per row of samples ``x``: how many lie beyond its ``level`` on the side of its ``sign``
+    (``(x - level) * sign > 0``, counted without making those arrays; integer codes are compared
+    with the level as they are, which is exact).
+
+    >>> _beyond(np.array([[1, 5, 7], [1, 5, 7]]), np.array([4.5, 4.5]), np.array([1, -1]))
+    array([2, 1])
+    """
+    m = level[:, None]
+    return np.where(sign > 0, np.count_nonzero(x > m, axis=1), np.count_nonzero(x < m, axis=1))
+
+
+def _floats(x: np.ndarray) -> np.ndarray:
+    """Gathered samples as float64 (integer codes turned into floats only where looked at)."""
+    return np.asarray(x, dtype=np.float64)
+
+
+def _median3(x: np.ndarray) -> np.ndarray:
+    """Median of each row of three: the same value as ``np.median(x, axis=1)``, in four
+    elementwise passes instead of a sort.
+
+    >>> _median3(np.array([[3.0, 1.0, 2.0], [5.0, 5.0, -1.0]])).tolist()
+    [2.0, 5.0]
+    """
+    a, b, c = x[:, 0], x[:, 1], x[:, 2]
+    return np.maximum(np.minimum(a, b), np.minimum(np.maximum(a, b), c))
 
 
 def _mean(x: np.ndarray) -> np.ndarray:
@@ -292,23 +402,54 @@ def _mean(x: np.ndarray) -> np.ndarray:
 
 
 def _last_crossing(
-    x: np.ndarray,
-    idx: np.ndarray,
+    stretch: np.ndarray,
     inside: np.ndarray,
     mid: np.ndarray,
     sign: np.ndarray,
-    s: np.ndarray,
     W: int,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Per flank: the sample after which ``x`` last crosses ``mid`` in the flank's direction
-    inside its search region, and whether there was such a crossing."""
-    above = (x[idx] - mid[:, None]) * sign[:, None] >= 0
+    """Per flank: the sample (counted from the start of its stretch, s - W) after which the
+    ``stretch`` of samples last crosses ``mid`` in the flank's direction inside its search
+    region, and whether there was such a crossing (if not: the sample before the run, s - 1).
+
+    >>> k, has = _last_crossing(np.array([[0.0, 0, 1, 0, 1, 1]]), np.ones((1, 6), bool),
+    ...                         np.array([0.5]), np.array([1]), 2)
+    >>> k.tolist(), has.tolist()
+    ([3], [True])
+    """
+    above = (stretch - mid[:, None]) * sign[:, None] >= 0
     cross = ~above[:, :-1] & above[:, 1:] & inside[:, 1:]
     has = cross.any(axis=1)
-    span = idx.shape[1]
+    span = stretch.shape[1]
     last = span - 2 - np.argmax(cross[:, ::-1], axis=1)
-    k = np.where(has, (s - W) + last, s - 1)
-    return k, has
+    return np.where(has, last, W - 1), has
+
+
+def _pad_right(x: np.ndarray, width: int) -> np.ndarray:
+    """``x`` (rows of samples) made ``width`` columns wide by repeating its last column.
+
+    >>> _pad_right(np.array([[1.0, 2.0]]), 4).tolist()
+    [[1.0, 2.0, 2.0, 2.0]]
+    """
+    if x.shape[1] >= width:
+        return x
+    return np.concatenate((x, np.repeat(x[:, -1:], width - x.shape[1], axis=1)), axis=1)
+
+
+def _linear_at(stretch: np.ndarray, k: np.ndarray, level: np.ndarray) -> np.ndarray:
+    """Per row of ``stretch``: the fraction of a sample after ``k`` where it crosses ``level``
+    (linear interpolation, as :func:`~toothcomb.decoders.frontends.base.linear_crossing`).
+
+    >>> _linear_at(np.array([[0.0, 1.0, 3.0]]), np.array([1]), np.array([2.0]))
+    array([0.5])
+    """
+    rows = np.arange(len(k))
+    y1 = stretch[rows, k]
+    y2 = stretch[rows, k + 1]
+    denom = y2 - y1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.where(denom != 0, (level - y1) / denom, 0.5)
+    return np.clip(frac, 0.0, 1.0)
 
 
 def default_window(sample_rate: float) -> int:

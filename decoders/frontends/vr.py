@@ -18,12 +18,14 @@ on how the leads are wired and is worked out later from the gap signature of the
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
+from scipy.signal import lfilter
 
 from ..model import ChannelLevels, Edges
-from .base import cubic_crossing, despike, has_spikes
+from .base import NEIGHBOURS, cubic_fraction, despike, has_spikes
 
 
 class VrFrontEnd:
@@ -40,6 +42,7 @@ class VrFrontEnd:
     """
 
     name = "vr"
+    handles = "variable-reluctance (VR, inductive) sensors: tooth-centre zero crossings"
 
     def __init__(
         self,
@@ -81,6 +84,20 @@ class VrFrontEnd:
         #: so a quiet stretch (the gap, a dropout) cannot arm on noise
         self._slow = self.envelope
         self._width = 0.0  # typical duration of a significant half-wave (samples)
+        #: value of one unit of the samples fed (1.0 for floats; a PCM code's value), set by the
+        #: first block, with the offset in those units and how to compare samples with it
+        self._unit: float | None = None
+        self._off = self.offset
+        self._above: tuple[str, float] = ("float", self.offset)
+        #: crossings found but not yet timed and closed: global sample index, the four samples
+        #: around each, whether all four are real, the sign after it, the peak of the stretch
+        #: after it (see :meth:`_scan`)
+        self._p_k: list[np.ndarray] = []
+        self._p_near: list[np.ndarray] = []
+        self._p_ok: list[np.ndarray] = []
+        self._p_after: list[np.ndarray] = []
+        self._p_peak: list[np.ndarray] = []
+        self._pending = 0
 
     @classmethod
     def calibrate(
@@ -113,31 +130,51 @@ class VrFrontEnd:
         return opts
 
     def process(self, samples: np.ndarray, start: int) -> Edges:
-        y = np.asarray(samples, dtype=float) - self.offset
+        return self._process(np.asarray(samples, dtype=float), start, 1.0)
+
+    def process_codes(self, codes: np.ndarray, start: int, scale: float) -> Edges:
+        """As :meth:`process`, for integer samples whose values are ``codes * scale``, ``scale``
+        a power of two (the codes of a PCM file): the same edges, to the last bit, without
+        turning every sample into a float (every threshold is divided by ``scale`` instead,
+        which is exact)."""
+        codes = np.asarray(codes)
+        if codes.dtype.kind not in "iu":
+            raise TypeError(f"process_codes takes integer samples, not {codes.dtype}")
+        return self._process(codes, start, float(scale))
+
+    def _process(self, x: np.ndarray, start: int, unit: float) -> Edges:
+        if self._unit is None:
+            self._unit = unit
+            #: the offset in the units of the samples
+            self._off = self.offset / unit
+            self._above = _above_level(x.dtype, self._off)
+        elif unit != self._unit or (x.dtype.kind in "iu") != (self._above[0] != "float"):
+            raise ValueError("a front end is fed floats or codes of one scale, not both")
         if len(self._tail) == 0:
             self._tail_start = start
             self._scanned = max(self._scanned, start)
             self._next_k = max(self._next_k, start)
-        buf = np.concatenate((self._tail, y)) if len(self._tail) else y
-        out = self._scan(buf, final=False)
+        buf = np.concatenate((self._tail, x)) if len(self._tail) else x
+        self._scan(buf, final=False)
         keep = min(4 + 2 * self._half, len(buf))
         self._tail = buf[len(buf) - keep :].copy()
         self._tail_start += len(buf) - keep
-        return out
+        if self._pending < CROSSINGS_PER_CLOSE:
+            return Edges.empty()
+        return self._edges(*self._close_pending())
 
     @property
     def settled_s(self) -> float:
         """No edge earlier than this time (s) will come out of later calls."""
         pending = self._next_k if self._open_start is None else min(self._open_start, self._next_k)
+        if self._p_k:
+            pending = min(pending, int(self._p_k[0][0]))
         return pending / self.sample_rate
 
     def finish(self) -> Edges:
-        times: list[float] = []
-        dirs: list[int] = []
-        strength: list[float] = []
         if len(self._tail):
-            e = self._scan(self._tail, final=True)
-            times, dirs, strength = list(e.times), list(e.direction), list(e.strength)
+            self._scan(self._tail, final=True)
+        times, dirs, strength = self._close_pending()
         # the last half-wave ends with the capture
         self._close(self._open_start, None, self._open_sign, self._open_peak, times, dirs, strength)
         self._open_start = None
@@ -146,11 +183,15 @@ class VrFrontEnd:
 
     # -- internals -------------------------------------------------------------------------
 
-    def _edges(self, times: list[float], dirs: list[int], strength: list[float]) -> Edges:
+    def _edges(
+        self, times: list[np.ndarray], dirs: list[np.ndarray], strength: list[np.ndarray]
+    ) -> Edges:
+        if not times:
+            return Edges.empty()
         return Edges(
-            np.asarray(times, dtype=float) / self.sample_rate,
-            np.asarray(dirs, dtype=np.int8),
-            np.asarray(strength, dtype=float),
+            np.concatenate(times) / self.sample_rate,
+            np.concatenate(dirs).astype(np.int8),
+            np.concatenate(strength).astype(float),
         )
 
     def _close(
@@ -159,17 +200,18 @@ class VrFrontEnd:
         end: float | None,
         sign: int,
         peak: float,
-        times: list[float],
-        dirs: list[int],
-        strength: list[float],
-    ) -> None:
-        """A half-wave of ``sign`` from crossing ``start`` to ``end`` (samples) has ended."""
+        times: list[np.ndarray],
+        dirs: list[np.ndarray],
+        strength: list[np.ndarray],
+    ) -> bool:
+        """A half-wave of ``sign`` from crossing ``start`` to ``end`` (samples) has ended.
+        Returns whether it was an ordinary one, as :meth:`_close_run` closes many at once."""
         if sign == 0:
-            return
+            return False
         arm = max(self.floor, self.fraction * self.envelope, 0.12 * self._slow)
         if peak < arm:
             self.envelope = max(self.envelope * self.decay, self.floor)
-            return
+            return False
         width = (end - start) if (start is not None and end is not None) else None
         if (
             width is not None
@@ -181,27 +223,135 @@ class VrFrontEnd:
         ):
             # far shorter (or shorter and taller) than the teeth around it: an ignition spike
             # that crossed zero, not a tooth
-            return
+            return False
+        ordinary = (
+            sign != self._state
+            and width is not None
+            and self._width > 0
+            and peak <= 4.0 * self.envelope
+            and peak <= 4.0 * self._slow
+        )
         if sign != self._state and start is not None:
-            times.append(start)
-            dirs.append(sign)
-            strength.append(peak + self._last_peak[-sign])
+            times.append(np.array([start]))
+            dirs.append(np.array([sign]))
+            strength.append(np.array([peak + self._last_peak[-sign]]))
         self._state = sign
         self._last_peak[sign] = peak
-        # a spike that got through must not lift the threshold over the next real teeth
+        # a spike that got through must not lift the threshold over the next real teeth (the
+        # running averages are the recursions of :data:`_ENVELOPE`, :data:`_SLOW` and
+        # :data:`_WIDTH`, computed as in :meth:`_close_run`)
         self.envelope = 0.5 * (self.envelope + min(peak, 4.0 * self.envelope))
-        self._slow += 0.05 * (min(peak, 4.0 * self._slow) - self._slow)
+        self._slow = _follow(_SLOW, self._slow, min(peak, 4.0 * self._slow))
         if width is not None:
-            self._width = width if self._width == 0 else self._width + 0.1 * (width - self._width)
+            self._width = width if self._width == 0 else _follow(_WIDTH, self._width, width)
+        return ordinary
 
-    def _scan(self, raw: np.ndarray, final: bool) -> Edges:
+    def _close_run(
+        self,
+        start: np.ndarray,
+        end: np.ndarray,
+        sign: np.ndarray,
+        peak: np.ndarray,
+        times: list[np.ndarray],
+        dirs: list[np.ndarray],
+        strength: list[np.ndarray],
+    ) -> int:
+        """Close consecutive half-waves at once, as :meth:`_close` would one by one, for as long
+        as each is an ordinary tooth half-wave (significant, not a spike, not clipped by the
+        envelope limits, alternating); returns how many were closed (0: the first is not).
+
+        The running averages follow first-order recursions; computed with ``lfilter`` from the
+        state before the run, they are what :meth:`_close` gives one step at a time.
+        """
+        if self._width <= 0 or sign[0] == self._state:
+            return 0
+        env = _run(_ENVELOPE, self.envelope, peak)
+        slow = _run(_SLOW, self._slow, peak)
+        width = end - start
+        wid = _run(_WIDTH, self._width, width)
+        env_pre = np.concatenate(([self.envelope], env[:-1]))
+        slow_pre = np.concatenate(([self._slow], slow[:-1]))
+        wid_pre = np.concatenate(([self._width], wid[:-1]))
+        arm = np.maximum(np.maximum(self.floor, self.fraction * env_pre), 0.12 * slow_pre)
+        spike = (width < 0.12 * wid_pre) | ((width < 0.25 * wid_pre) & (peak > 2.0 * env_pre))
+        ok = ~(peak < arm) & ~spike & (peak <= 4.0 * env_pre) & (peak <= 4.0 * slow_pre)
+        f = len(ok) if ok.all() else int(np.argmin(ok))
+        if f == 0:
+            return 0
+        before = np.concatenate(([self._last_peak[-int(sign[0])]], peak[: f - 1]))
+        times.append(start[:f])
+        dirs.append(sign[:f])
+        strength.append(peak[:f] + before)
+        last = int(sign[f - 1])
+        self._state = last
+        self._last_peak[last] = float(peak[f - 1])
+        if f >= 2:
+            self._last_peak[-last] = float(peak[f - 2])
+        self.envelope = float(env[f - 1])
+        self._slow = float(slow[f - 1])
+        self._width = float(wid[f - 1])
+        return f
+
+    def _close_all(
+        self,
+        start: np.ndarray,
+        end: np.ndarray,
+        sign: np.ndarray,
+        peak: np.ndarray,
+        times: list[np.ndarray],
+        dirs: list[np.ndarray],
+        strength: list[np.ndarray],
+    ) -> None:
+        """Close the half-waves in order: runs of ordinary ones at once, the others (noise
+        between teeth, spikes, the first few) one by one."""
+        i, m = 0, len(end)
+        span = m  # half-waves tried at once; shorter after a run stopped early
+        alone = 0  # half-waves to close one by one before trying a run again
+        while i < m:
+            if alone > 0:
+                # odd half-waves come thick here (noise about the zero between teeth): one by
+                # one until a few ordinary ones in a row say a run may pay again
+                ordinary = self._close(
+                    float(start[i]), float(end[i]), int(sign[i]), float(peak[i]),
+                    times, dirs, strength,
+                )
+                i += 1
+                alone = alone - 1 if ordinary else ALONE_AFTER_ODD
+                continue
+            done = self._close_run(
+                start[i : i + span], end[i : i + span], sign[i : i + span], peak[i : i + span],
+                times, dirs, strength,
+            )
+            i += done
+            if done == span:
+                span *= 2
+                continue
+            if i < m:
+                self._close(
+                    float(start[i]), float(end[i]), int(sign[i]), float(peak[i]),
+                    times, dirs, strength,
+                )
+                i += 1
+            # after a long run the odd half-wave was a one-off: try all the rest at once; after
+            # a short one, odd half-waves are frequent: close the next ones one by one
+            if done >= 64:
+                span = m - i
+            else:
+                span, alone = 64, ALONE_AFTER_ODD
+
+    def _scan(self, raw: np.ndarray, final: bool) -> None:
+        """Find the crossings of ``raw`` (samples from :attr:`_tail_start`) and the peak of the
+        stretch after each; they wait, with the samples around them, to be timed and closed
+        by :meth:`_close_pending` several blocks at once."""
         g = self._tail_start
         n = len(raw)
         if n < 2:
-            return Edges.empty()
+            return
         half = self._half
+        o = self._off
         buf = despike(raw, self.despike)
-        positive = buf > 0.0
+        # above the signal's zero; the same as (x - offset) > 0, without making that array
+        positive = _compare(buf, self._above)
         kk = np.flatnonzero(positive[:-1] != positive[1:])
         limit = n - 2 if final else n - 3 - half
         kk = kk[(kk + g >= self._next_k) & (kk <= limit)]
@@ -211,40 +361,163 @@ class VrFrontEnd:
         b = n if final else n - 1 - half  # exclusive
         # every crossing up to the limit has been looked at, with or without a find
         self._next_k = max(self._next_k, g + limit + 1)
-        if len(kk):
-            # the time comes from the samples as recorded (the running median only found the
-            # crossing); where they do not cross there (a spike on it), from the cleaned ones
-            same = (raw[kk] > 0.0) != (raw[kk + 1] > 0.0)
-            frac = np.where(same, cubic_crossing(raw, kk, 0.0), cubic_crossing(buf, kk, 0.0))
-            pos = (kk + g) + frac
-        else:
-            pos = np.empty(0)
-        absx = np.abs(buf[a:b]) if b > a else np.empty(0)
-        bnd = np.clip(kk - a + 1, 0, len(absx))
-        starts = np.concatenate(([0], bnd))
-        padded = np.insert(absx, starts, 0.0)
-        seg = np.maximum.reduceat(padded, starts + np.arange(len(starts)))
+        # peak |x - offset| of each stretch between crossings: the largest of its highest
+        # sample's height and its lowest one's depth (0 for an empty stretch)
+        length = max(b - a, 0)
+        bounds = np.clip(kk - a + 1, 0, length)
+        starts = np.concatenate(([0], bounds))
+        ends = np.concatenate((bounds, [length]))
+        seg = np.zeros(len(starts))
+        full = ends > starts
+        if np.any(full):
+            part = buf[a : a + length]
+            at = starts[full]
+            hi = np.maximum.reduceat(part, at) - o
+            lo = o - np.minimum.reduceat(part, at)
+            seg[full] = np.maximum(np.maximum(hi, lo), 0.0) * self._unit
         self._scanned = g + b
-        times: list[float] = []
-        dirs: list[int] = []
-        strength: list[float] = []
         if self._open_sign == 0:
             self._open_sign = 1 if positive[0] else -1
-        self._open_peak = max(self._open_peak, float(seg[0]))
-        for j, k in enumerate(kk):
+        if self._p_peak:
+            last = self._p_peak[-1]
+            last[-1] = max(last[-1], seg[0])
+        else:
+            self._open_peak = max(self._open_peak, float(seg[0]))
+        if len(kk) == 0:
+            return
+        # the time comes from the samples as recorded (the running median only found the
+        # crossing); where they do not cross there (a spike on it), from the cleaned ones
+        near = np.clip(kk[None, :] + NEIGHBOURS[:, None], 0, n - 1)
+        around = raw[near]
+        if buf is not raw:
+            same = _compare(raw[kk], self._above) != _compare(raw[kk + 1], self._above)
+            if not same.all():
+                around = np.where(same[None, :], around, buf[near])
+        self._p_k.append(kk + g)
+        self._p_near.append(around)
+        self._p_ok.append((kk - 1 >= 0) & (kk + 2 < n))
+        self._p_after.append(np.where(positive[kk + 1], 1, -1))
+        self._p_peak.append(seg[1:])
+        self._pending += len(kk)
+
+    def _close_pending(self) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
+        """Time the crossings found so far and close the half-waves they end, in order; the
+        edges as lists of arrays of times (samples), directions and strengths."""
+        times: list[np.ndarray] = []
+        dirs: list[np.ndarray] = []
+        strength: list[np.ndarray] = []
+        if not self._p_k:
+            return times, dirs, strength
+        k = np.concatenate(self._p_k)
+        near = np.concatenate(self._p_near, axis=1).astype(float) - self._off
+        ok = np.concatenate(self._p_ok)
+        after = np.concatenate(self._p_after)
+        seg = np.concatenate(self._p_peak)  # the peak of the stretch after each crossing
+        self._p_k, self._p_near, self._p_ok, self._p_after, self._p_peak = [], [], [], [], []
+        self._pending = 0
+        pos = k + cubic_fraction(near, ok)
+        m = len(pos)
+        if self._open_start is None:
+            # the half-wave the capture starts in has no start: closed on its own
             self._close(
-                self._open_start,
-                float(pos[j]),
-                self._open_sign,
-                self._open_peak,
-                times,
-                dirs,
-                strength,
+                None, float(pos[0]), self._open_sign, self._open_peak, times, dirs, strength
             )
-            self._open_start = float(pos[j])
-            self._open_sign = 1 if positive[k + 1] else -1
-            self._open_peak = float(seg[j + 1])
-        return self._edges(times, dirs, strength)
+            start, end, sign, peak = pos[:-1], pos[1:], after[:-1], seg[: m - 1]
+        else:
+            start = np.concatenate(([self._open_start], pos[:-1]))
+            sign = np.concatenate(([self._open_sign], after[:-1]))
+            peak = np.concatenate(([self._open_peak], seg[: m - 1]))
+            end = pos
+        if len(end):
+            self._close_all(start, end, sign, peak, times, dirs, strength)
+        self._open_start = float(pos[-1])
+        self._open_sign = int(after[-1])
+        self._open_peak = float(seg[-1])
+        return times, dirs, strength
+
+
+#: the running averages of :class:`VrFrontEnd` follow first-order recursions
+#: ``y[n] = b * x[n] + k * y[n - 1]``, given here as (b, k). They are computed with
+#: :func:`scipy.signal.lfilter`, for a run of half-waves at once or for a single one, so that both
+#: give the same numbers to the last bit
+_ENVELOPE = (0.5, 0.5)  # the envelope: the mean of itself and the new peak
+_SLOW = (0.05, 0.95)  # the slow average of significant peaks
+_WIDTH = (0.1, 0.9)  # the typical width of a significant half-wave
+
+
+#: crossings gathered (over as many blocks as it takes) before they are timed and closed
+#: together: the per-crossing work is done in few, long numpy passes
+CROSSINGS_PER_CLOSE = 4096
+#: after an odd half-wave that broke a short run, this many ordinary ones in a row are closed one
+#: by one before a run is tried again
+ALONE_AFTER_ODD = 16
+
+
+def _above_level(dtype: np.dtype, level: float) -> tuple[str, float]:
+    """How to tell samples of ``dtype`` above ``level`` exactly: ("float", level) compares as
+    is; integers are above a level exactly when above its floor, so ("int", floor) compares
+    integers with integers; ("all", 0) or ("none", 0) when the level lies outside the type's
+    range.
+
+    >>> _above_level(np.dtype(np.int16), -0.5), _above_level(np.dtype(np.int16), 4e4)
+    (('int', -1), ('none', 0))
+    """
+    if dtype.kind not in "iu":
+        return ("float", float(level))
+    info = np.iinfo(dtype)
+    floor = math.floor(level)
+    if floor < info.min:
+        return ("all", 0)
+    if floor >= info.max:
+        return ("none", 0)
+    return ("int", floor)
+
+
+def _compare(x: np.ndarray, above: tuple[str, float]) -> np.ndarray:
+    """``x`` above the level ``above`` describes (see :func:`_above_level`)."""
+    kind, level = above
+    if kind == "all":
+        return np.ones(np.shape(x), dtype=bool)
+    if kind == "none":
+        return np.zeros(np.shape(x), dtype=bool)
+    return np.asarray(x > level)
+
+
+def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
+    """The recursion ``rec`` over ``x`` from the value ``y0``: y[0], y[1], ..."""
+    b, k = rec
+    y, _ = lfilter([b], [1.0, -k], x, zi=[k * y0])
+    return y
+
+
+def _lfilter_is_plain() -> bool:
+    """True when :func:`scipy.signal.lfilter` computes a step of a first-order recursion as
+    Python does, ``b * x + k * y``, to the last bit (it does unless the compiled library fuses
+    multiplies and adds); then a single step need not call it."""
+    rng = np.random.default_rng(1)
+    x = rng.random(512) * 10.0 ** rng.integers(-6, 3, 512)
+    for b, k in (_SLOW, _WIDTH):
+        prev = 0.3
+        for xi, yi in zip(x.tolist(), _run((b, k), prev, x).tolist(), strict=True):
+            if b * xi + k * prev != yi:
+                return False
+            prev = yi
+    return True
+
+
+_PLAIN = _lfilter_is_plain()
+
+
+def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
+    """One step of the recursion ``rec`` from ``y0`` with the new value ``x``: the number
+    :func:`_run` gives for it.
+
+    >>> _follow(_SLOW, 1.0, 3.0)
+    1.1
+    """
+    if _PLAIN:
+        return rec[0] * x + rec[1] * y0
+    return float(_run(rec, y0, np.array([x]))[0])
 
 
 def spectral_noise(y: np.ndarray, n_max: int = 1 << 18) -> float:

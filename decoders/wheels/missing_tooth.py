@@ -108,6 +108,7 @@ class MissingToothWheel:
     """The ``toothcomb.wheels`` plugin for N-M wheels."""
 
     name = "missing-tooth"
+    handles = "N-M missing-tooth crank wheels, e.g. 60-2, 36-1, 24-1"
 
     @staticmethod
     def parse(text: str) -> MissingToothSpec | None:
@@ -519,35 +520,14 @@ class ToothTracker:
                 out.refs.append(float(t[i]))
                 continue
 
-            # fast path: a whole clean revolution from tooth 1
+            # fast path: whole clean revolutions from tooth 1, as many as have arrived
             if self._tooth == 1:
                 if i + K >= n and not final:
                     break
-                if i + K < n:
-                    steps = np.ones(K)
-                    steps[-1] = spec.missing + 1
-                    T = np.diff(t[i : i + K + 1])
-                    q = T / steps
-                    rel = q[1:] / q[:-1]
-                    if abs(math.log(q[0] / self._p_last)) < 0.25 and np.all(
-                        np.abs(np.log(rel)) < 0.25
-                    ):
-                        cum = np.cumsum(steps) * spec.pitch_deg
-                        teeth = np.arange(2, K + 2)
-                        teeth[-1] = 1
-                        out.teeth(t[i + 1 : i + K + 1], self._angle + cum, self._run, teeth, steps)
-                        out.refs.append(float(t[i + K]))
-                        self._angle += 360.0
-                        self._p_prev = float(q[-2]) if K > 1 else float(q[-1])
-                        self._p_last = float(q[-1])
-                        x = np.concatenate(([0.0], np.cumsum(steps)))
-                        x += self._angle / spec.pitch_deg - spec.positions
-                        self._hist = [
-                            (float(x[j]), float(x[j + 1]), float(T[j]))
-                            for j in range(max(0, K - HISTORY), K)
-                        ]
-                        i += K
-                        continue
+                revs = self._clean_revolutions(t, i, (n - 1 - i) // K, out)
+                if revs:
+                    i += revs * K
+                    continue
 
             if i + 2 >= n and not final:
                 break
@@ -576,6 +556,54 @@ class ToothTracker:
                 findings=track.findings,
             )
         return track
+
+    def _clean_revolutions(self, t: np.ndarray, i: int, available: int, out: _Out) -> int:
+        """Take the whole revolutions that follow tooth 1 at ``t[i]`` while each is clean:
+        every pitch period (the gap counted as M + 1 pitches) within 25 % of the one before it.
+        Up to ``available`` revolutions are looked at together; returns how many were taken.
+        The teeth, angles and speed prediction are those the tooth-by-tooth path would give.
+        """
+        if available <= 0:
+            return 0
+        spec = self.spec
+        K = spec.teeth
+        steps = np.ones(K)
+        steps[-1] = spec.missing + 1
+        T = np.diff(t[i : i + available * K + 1])
+        q = T / np.tile(steps, available)
+        if not abs(math.log(q[0] / self._p_last)) < 0.25:
+            return 0
+        # the first period of each revolution is compared with the last one of the revolution
+        # before, as the one-revolution check compares it with the speed prediction
+        ok = np.concatenate(([True], np.abs(np.log(q[1:] / q[:-1])) < 0.25))
+        clean = ok.reshape(available, K).all(axis=1)
+        revs = available if clean.all() else int(np.argmin(clean))
+        if revs == 0:
+            return 0
+        cum = np.cumsum(steps) * spec.pitch_deg
+        teeth = np.arange(2, K + 2)
+        teeth[-1] = 1
+        # one revolution after another, added as the revolution-by-revolution loop adds them
+        base = np.cumsum(np.concatenate(([self._angle], np.full(revs, 360.0))))
+        out.teeth(
+            t[i + 1 : i + revs * K + 1],
+            (base[:-1, None] + cum[None, :]).ravel(),
+            self._run,
+            np.tile(teeth, revs),
+            np.tile(steps, revs),
+        )
+        out.refs.extend(float(x) for x in t[i + K : i + revs * K + 1 : K])
+        self._angle = float(base[-1])
+        last = (revs - 1) * K
+        self._p_prev = float(q[last + K - 2])
+        self._p_last = float(q[last + K - 1])
+        x = np.concatenate(([0.0], np.cumsum(steps)))
+        x += self._angle / spec.pitch_deg - spec.positions
+        self._hist = [
+            (float(x[j]), float(x[j + 1]), float(T[last + j]))
+            for j in range(max(0, K - HISTORY), K)
+        ]
+        return revs
 
     def _expected(self, x0: float, c: float, p_pred: float) -> float:
         """Expected duration of the next ``c`` pitches from pitch position ``x0``: the integral

@@ -1,0 +1,268 @@
+#!/usr/bin/env python3
+"""Decode speed against reading the file, and peak memory, on long captures.
+
+The targets (toothcomb issue 6): decoding a two-channel 16-bit WAV (crank and one cam, Hall or
+VR) end to end takes at most 1.5 times what ``soundfile`` alone needs to read the same file into
+float32 arrays, measured side by side in one run; peak resident memory stays flat as captures
+grow (60 minutes at 192 kHz within about 300 MB), for WAV, CSV and HDF5 alike; a scope CSV is
+parsed in blocks at least as fast as numpy's own text loader.
+
+What it does:
+
+1. writes simulated captures into a scratch folder, block by block (making them needs little
+   memory): the idle demo scenario (60-2 crank, single-window Hall cam, 800 rpm) recorded by a
+   sound card at ``--rate`` as 16-bit WAV, once with a VR and once with a Hall crank sensor, for
+   every length in ``--minutes``; an HDF5 file (float32) of the longest length; a scope CSV of
+   about ``--csv-mb`` megabytes (500 kS/s, 8-bit);
+2. in a fresh process per capture: reads the WAV with ``soundfile`` into float32 blocks of the
+   decoder's block size, decodes it, and repeats both (the faster of each pair counts, so the
+   page cache is warm for both); reads it in one piece as well when it fits ``--one-shot-mb``;
+   reports both times, their ratio and the decode's peak resident memory (``ru_maxrss``);
+3. for the CSV: times toothcomb's blockwise parse of the whole file against ``numpy.loadtxt``
+   on its first ``--loadtxt-rows`` rows (rows per second), and the decode's peak memory;
+4. removes the scratch folder unless ``--keep DIR`` names one (files found there are reused).
+
+    python benchmarks/scale.py                        # 1, 10, 60 min at 192 kHz: 9 GB, ~30 min
+    python benchmarks/scale.py --minutes 1 10         # shorter
+    python benchmarks/scale.py --keep /tmp/tc-scale   # keep (and reuse) the captures
+    python benchmarks/scale.py --only wav             # skip the CSV and HDF5 parts
+
+The simulated sound card runs without oversampling (``oversample=1``) so that an hour of capture
+is made in minutes; the decoder sees the same kind of signal either way. Timing is wall-clock on
+whatever else the machine is doing: run it twice and compare.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+#: run in a fresh process: read side by side with the decode, then peak memory
+MEASURE = r"""
+import json, resource, sys, time
+import numpy as np, soundfile as sf
+from toothcomb.decoders.options import DecodeOptions
+from toothcomb.decoders.pipeline import decode_capture
+
+path, bs, one_shot_mb, repeats = sys.argv[1], int(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
+
+def read_blocks():
+    t0 = time.perf_counter()
+    n = 0
+    with sf.SoundFile(path) as f:
+        for b in f.blocks(blocksize=bs, dtype="float32", always_2d=True):
+            n += b.shape[0]
+    return time.perf_counter() - t0
+
+def decode():
+    t0 = time.perf_counter()
+    r = decode_capture(path, DecodeOptions(block_size=bs))
+    return time.perf_counter() - t0, r
+
+reads, decodes = [], []
+for _ in range(repeats):
+    reads.append(read_blocks())
+    dt, r = decode()
+    decodes.append(dt)
+peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+one = None
+info = sf.info(path)
+if info.frames * info.channels * 4 / 1e6 <= one_shot_mb:
+    t0 = time.perf_counter()
+    x, _ = sf.read(path, dtype="float32", always_2d=True)
+    one = time.perf_counter() - t0
+    del x
+print(json.dumps({
+    "read_s": min(reads), "decode_s": min(decodes), "one_shot_s": one, "peak_mib": peak,
+    "frames": info.frames, "revolutions": r.crank.revolutions,
+    "references": len(r.crank.reference_times_s), "sync_losses": r.crank.sync_losses,
+    "rpm": r.crank.rpm.mean,
+    "cam_edges": [[e.direction, round(e.angle.mean, 3), e.angle.n] for e in r.cams[0].edges],
+}))
+"""
+
+#: decode only, for peak memory of CSV and HDF5 captures
+DECODE_ONLY = r"""
+import json, resource, sys, time
+from toothcomb.decoders.options import DecodeOptions
+from toothcomb.decoders.pipeline import decode_capture
+t0 = time.perf_counter()
+r = decode_capture(sys.argv[1], DecodeOptions(block_size=int(sys.argv[2])))
+dt = time.perf_counter() - t0
+print(json.dumps({"decode_s": dt,
+                  "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
+                  "samples": r.capture.n_samples, "revolutions": r.crank.revolutions,
+                  "references": len(r.crank.reference_times_s)}))
+"""
+
+#: blockwise CSV parse against numpy.loadtxt on the same rows
+CSV_PARSE = r"""
+import json, resource, sys, time
+import numpy as np
+from toothcomb.decoders.readers import open_capture
+path, bs, rows = sys.argv[1], int(sys.argv[2]), int(sys.argv[3])
+t0 = time.perf_counter()
+src = open_capture(path)
+t_open = time.perf_counter() - t0
+n = 0
+t0 = time.perf_counter()
+for b in src.blocks(bs):
+    n += b.data.shape[0]
+t_blocks = time.perf_counter() - t0
+src.close()
+# the header: comment lines start with '#', then one line of names
+with open(path) as f:
+    skip = 0
+    for line in f:
+        skip += 1
+        if not line.startswith("#"):
+            break
+t0 = time.perf_counter()
+x = np.loadtxt(path, delimiter=",", skiprows=skip, max_rows=rows, ndmin=2)
+t_np = time.perf_counter() - t0
+print(json.dumps({"rows": n, "open_s": t_open, "blocks_s": t_blocks,
+                  "loadtxt_rows": int(x.shape[0]), "loadtxt_s": t_np,
+                  "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}))
+"""
+
+BASELINE = r"""
+import json, resource
+import numpy, scipy, soundfile, h5py, rich
+import toothcomb.decoders.pipeline
+print(json.dumps({"peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}))
+"""
+
+
+def scenario(crank: str, seconds: float, rate: float, instrument: str = "soundcard"):
+    """The idle demo scenario at ``rate``, with a ``crank`` ("vr" or "hall") crank sensor."""
+    from toothcomb.decoders.simulate import HallSensor, Instrument, preset
+
+    sc = preset("idle-60-2-vr-soundcard", duration_s=seconds)
+    if instrument == "soundcard":
+        inst = dataclasses.replace(sc.instrument, sample_rate=rate, oversample=1)
+    elif instrument == "scope":
+        inst = Instrument(kind="scope", sample_rate=rate, bits=8, range_v=(-1.0, 1.0))
+    else:
+        inst = Instrument(kind="float", sample_rate=rate)
+    sc = sc.replace(instrument=inst)
+    if crank == "hall":
+        sc = sc.replace(crank=dataclasses.replace(sc.crank, sensor=HallSensor()))
+    return sc
+
+
+def make(path: Path, sc, subtype: str | None = None) -> float:
+    """Write ``sc`` to ``path`` (skipped when it exists); seconds it took."""
+    from toothcomb.decoders.simulate import write_scenario
+
+    if path.exists():
+        return 0.0
+    t0 = time.perf_counter()
+    write_scenario(sc, path, subtype=subtype, block_size=1 << 18)
+    return time.perf_counter() - t0
+
+
+def run(code: str, *args: str) -> dict:
+    out = subprocess.run([sys.executable, "-c", code, *args], capture_output=True, text=True)
+    if out.returncode != 0:
+        raise SystemExit(f"{args[0] if args else 'baseline'}: {out.stderr.strip()}")
+    return json.loads(out.stdout)
+
+
+def csv_seconds(folder: Path, megabytes: float, rate: float) -> float:
+    """Seconds of scope capture that make a CSV of about ``megabytes``."""
+    probe = folder / "size-probe.csv"
+    make(probe, scenario("vr", 0.2, rate, "scope"))
+    per_s = probe.stat().st_size / 0.2
+    probe.unlink()
+    return max(1.0, round(megabytes * 1e6 / per_s))
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
+    ap.add_argument("--minutes", type=float, nargs="+", default=[1.0, 10.0, 60.0],
+                    help="WAV capture lengths in minutes (default: 1 10 60)")
+    ap.add_argument("--rate", type=float, default=192000.0, help="WAV sample rate (Hz)")
+    ap.add_argument("--sensors", nargs="+", default=["vr", "hall"], choices=["vr", "hall"],
+                    help="crank sensors to simulate (default: vr hall)")
+    ap.add_argument("--block-size", type=int, default=1 << 16, help="samples per block")
+    ap.add_argument("--repeats", type=int, default=2, help="read/decode pairs per capture")
+    ap.add_argument("--one-shot-mb", type=float, default=1200.0,
+                    help="also time a one-piece read when the float32 array is this small")
+    ap.add_argument("--csv-mb", type=float, default=1000.0, help="size of the scope CSV (MB)")
+    ap.add_argument("--loadtxt-rows", type=int, default=3_000_000,
+                    help="rows numpy.loadtxt parses for the comparison")
+    ap.add_argument("--only", nargs="+", default=["wav", "csv", "hdf5"],
+                    choices=["wav", "csv", "hdf5"], help="parts to run")
+    ap.add_argument("--keep", metavar="DIR", help="keep (and reuse) the captures in DIR")
+    a = ap.parse_args(argv)
+
+    folder = Path(a.keep) if a.keep else Path(tempfile.mkdtemp(prefix="toothcomb-scale-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    try:
+        base = run(BASELINE)["peak_mib"]
+        print(f"python {sys.version.split()[0]}, {os.cpu_count()} cpu, block size "
+              f"{a.block_size}; imports alone: {base:.0f} MiB peak")
+        if "wav" in a.only:
+            print(f"\n2-channel 16-bit WAV at {a.rate:g} Hz: soundfile read into float32 blocks "
+                  "against the whole decode, side by side")
+            print(f"{'crank':>5} {'min':>5} {'MB':>7} {'make s':>7} {'read s':>7} {'1-shot s':>8} "
+                  f"{'decode s':>9} {'ratio':>6} {'Msamp/s':>8} {'peak MiB':>9}  result")
+            for minutes in a.minutes:
+                for crank in a.sensors:
+                    path = folder / f"idle-{crank}-{minutes:g}min.wav"
+                    made = make(path, scenario(crank, minutes * 60.0, a.rate))
+                    r = run(MEASURE, str(path), str(a.block_size), str(a.one_shot_mb),
+                            str(a.repeats))
+                    one = f"{r['one_shot_s']:8.2f}" if r["one_shot_s"] is not None else "       -"
+                    rate = r["frames"] * 2 / r["decode_s"] / 1e6
+                    edges = " ".join(f"{d[0]} {d[1]:.2f} (n {d[2]})" for d in r["cam_edges"])
+                    print(f"{crank:>5} {minutes:5g} {path.stat().st_size / 1e6:7.0f} {made:7.0f} "
+                          f"{r['read_s']:7.2f} {one} {r['decode_s']:9.2f} "
+                          f"{r['decode_s'] / r['read_s']:6.2f} {rate:8.1f} {r['peak_mib']:9.0f}  "
+                          f"{r['rpm']:.0f} rpm, {r['references']} refs, "
+                          f"{r['sync_losses']} losses; cam {edges}", flush=True)
+        longest = max(a.minutes)
+        if "hdf5" in a.only:
+            path = folder / f"idle-vr-{longest:g}min.h5"
+            made = make(path, scenario("vr", longest * 60.0, a.rate, "float"), "float32")
+            r = run(DECODE_ONLY, str(path), str(a.block_size))
+            print(f"\nHDF5 float32, {longest:g} min at {a.rate:g} Hz "
+                  f"({path.stat().st_size / 1e6:.0f} MB, made in {made:.0f} s): decode "
+                  f"{r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
+                  f"{r['references']} reference events", flush=True)
+        if "csv" in a.only:
+            rate = 500_000.0
+            seconds = csv_seconds(folder, a.csv_mb, rate)
+            path = folder / f"scope-vr-{seconds:g}s.csv"
+            made = make(path, scenario("vr", seconds, rate, "scope"))
+            size = path.stat().st_size / 1e6
+            p = run(CSV_PARSE, str(path), str(a.block_size), str(a.loadtxt_rows))
+            ours = p["rows"] / p["blocks_s"]
+            theirs = p["loadtxt_rows"] / p["loadtxt_s"]
+            print(f"\nscope CSV, {seconds:g} s at {rate:g} Hz ({size:.0f} MB, {p['rows']} rows, "
+                  f"made in {made:.0f} s)")
+            print(f"  open (checks every row, fits the clock): {p['open_s']:.1f} s, "
+                  f"{p['rows'] / p['open_s'] / 1e6:.2f} M rows/s")
+            print(f"  blockwise parse: {p['blocks_s']:.1f} s, {ours / 1e6:.2f} M rows/s, "
+                  f"{size / p['blocks_s']:.0f} MB/s; numpy.loadtxt on {p['loadtxt_rows']} rows: "
+                  f"{p['loadtxt_s']:.1f} s, {theirs / 1e6:.2f} M rows/s; ours/loadtxt "
+                  f"{ours / theirs:.2f}", flush=True)
+            r = run(DECODE_ONLY, str(path), str(a.block_size))
+            print(f"  decode: {r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
+                  f"{r['references']} reference events", flush=True)
+    finally:
+        if not a.keep:
+            shutil.rmtree(folder, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
