@@ -46,6 +46,27 @@ class FrontEnd(Protocol):
 NEIGHBOURS = np.arange(-1, 3)
 
 
+class SampleFeed:
+    """What a front end does with the samples it is given: floats as they are, or the integer
+    codes of a PCM file with their scale (the same edges, to the last bit, without turning every
+    sample into a float). Subclasses implement ``_process(samples, start, unit)``."""
+
+    def _process(self, samples: np.ndarray, start: int, unit: float) -> Edges:
+        raise NotImplementedError
+
+    def process(self, samples: np.ndarray, start: int) -> Edges:
+        return self._process(np.asarray(samples, dtype=float), start, 1.0)
+
+    def process_codes(self, codes: np.ndarray, start: int, scale: float) -> Edges:
+        """As :meth:`process`, for integer samples whose values are ``codes * scale``, ``scale``
+        a power of two (the codes of a PCM file): every threshold is divided by ``scale``
+        instead, which is exact."""
+        codes = np.asarray(codes)
+        if codes.dtype.kind not in "iu":
+            raise TypeError(f"process_codes takes integer samples, not {codes.dtype}")
+        return self._process(codes, start, float(scale))
+
+
 def cubic_crossing(y: np.ndarray, k: np.ndarray, level: float | np.ndarray) -> np.ndarray:
     """Fraction of a sample, after ``k``, where the samples cross ``level`` (0 <= f <= 1).
 

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from ..model import ChannelLevels, Edges
-from .base import despike, has_spikes
+from .base import SampleFeed, despike, has_spikes
 
 #: flank candidates gathered (over as many blocks as it takes) before they are judged and timed
 #: together: the per-flank work is done in few, long numpy passes
@@ -41,7 +41,7 @@ FLANKS_PER_TIMING = 512
 TRANSITION_S = 25e-6
 
 
-class HallFrontEnd:
+class HallFrontEnd(SampleFeed):
     """Edges of a two-level (Hall or digital) signal, streaming, with sub-sample timing.
 
     >>> fs = 48000.0
@@ -158,19 +158,6 @@ class HallFrontEnd:
             if has_spikes(probe, 0.3 * float(np.median(edges.strength))):
                 opts["despike"] = 5 if shortest >= 10 else 3 if shortest >= 5 else 1
         return opts
-
-    def process(self, samples: np.ndarray, start: int) -> Edges:
-        return self._process(np.asarray(samples, dtype=float), start, 1.0)
-
-    def process_codes(self, codes: np.ndarray, start: int, scale: float) -> Edges:
-        """As :meth:`process`, for integer samples whose values are ``codes * scale``, ``scale``
-        a power of two (the codes of a PCM file): the same edges, to the last bit, without
-        turning every sample into a float (every threshold is divided by ``scale`` instead,
-        which is exact)."""
-        codes = np.asarray(codes)
-        if codes.dtype.kind not in "iu":
-            raise TypeError(f"process_codes takes integer samples, not {codes.dtype}")
-        return self._process(codes, start, float(scale))
 
     def _process(self, samples: np.ndarray, start: int, unit: float) -> Edges:
         ints = samples.dtype.kind in "iu"

@@ -25,10 +25,10 @@ import numpy as np
 from scipy.signal import lfilter
 
 from ..model import ChannelLevels, Edges
-from .base import NEIGHBOURS, cubic_fraction, despike, has_spikes
+from .base import NEIGHBOURS, SampleFeed, cubic_fraction, despike, has_spikes
 
 
-class VrFrontEnd:
+class VrFrontEnd(SampleFeed):
     """Zero crossings of a VR signal with an amplitude-following arming threshold.
 
     >>> fs = 50000.0
@@ -128,19 +128,6 @@ class VrFrontEnd:
             half_wave = float(np.percentile(np.diff(edges.times), 10)) * sample_rate
             opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
         return opts
-
-    def process(self, samples: np.ndarray, start: int) -> Edges:
-        return self._process(np.asarray(samples, dtype=float), start, 1.0)
-
-    def process_codes(self, codes: np.ndarray, start: int, scale: float) -> Edges:
-        """As :meth:`process`, for integer samples whose values are ``codes * scale``, ``scale``
-        a power of two (the codes of a PCM file): the same edges, to the last bit, without
-        turning every sample into a float (every threshold is divided by ``scale`` instead,
-        which is exact)."""
-        codes = np.asarray(codes)
-        if codes.dtype.kind not in "iu":
-            raise TypeError(f"process_codes takes integer samples, not {codes.dtype}")
-        return self._process(codes, start, float(scale))
 
     def _process(self, x: np.ndarray, start: int, unit: float) -> Edges:
         if self._unit is None:
