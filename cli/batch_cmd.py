@@ -37,6 +37,8 @@ from toothcomb.decoders.batch import (
 )
 from toothcomb.decoders.errors import UsageError
 
+from .argtypes import checked
+
 if TYPE_CHECKING:
     from .main import Streams
 
@@ -69,14 +71,9 @@ exit codes:
   130  interrupted with Ctrl-C"""
 
 
-def _jobs(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number of jobs; give e.g. 4") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{text!r} jobs is too few; give 1 or more")
-    return value
+_jobs = checked(
+    int, "a number of jobs", "e.g. 4", lambda v: v >= 1, "{text} jobs is too few; give 1 or more"
+)
 
 
 def add_batch_parser(sub: Any, formatter: type[argparse.HelpFormatter], exit_codes: str) -> None:

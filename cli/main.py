@@ -27,6 +27,8 @@ from toothcomb.decoders.errors import CaptureError, ToothcombError, UsageError
 from toothcomb.decoders.model import DEFAULT_BLOCK_SIZE
 from toothcomb.decoders.options import DecodeOptions
 
+from .argtypes import checked
+
 PROG = "toothcomb"
 
 EXIT_OK = 0
@@ -80,70 +82,38 @@ CH_HELP = "a channel name or its 0-based index"
 # --------------------------------------------------------------------------- argument types
 
 
-def _positive_float(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number; give e.g. 48000") from None
-    if not value > 0 or value == float("inf"):
-        raise argparse.ArgumentTypeError(f"{text!r} must be a positive finite number")
-    return value
+_positive_float = checked(
+    float, "a number", "e.g. 48000", lambda v: 0 < v < float("inf"),
+    "{text} must be a positive finite number",
+)
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"{text!r} is not a whole number; give e.g. 65536"
-        ) from None
-    if value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be a whole number above 0")
-    return value
+_positive_int = checked(
+    int, "a whole number", "e.g. 65536", lambda v: v > 0, "{text} must be a whole number above 0"
+)
 
 
-def _tolerance(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an angle; give e.g. 3") from None
-    if not 0 < value <= 90:
-        raise argparse.ArgumentTypeError(
-            f"{text!r} deg CA is not a usable tolerance; give a positive angle up to 90"
-        )
-    return value
+_tolerance = checked(
+    float, "an angle", "e.g. 3", lambda v: 0 < v <= 90,
+    "{text} deg CA is not a usable tolerance; give a positive angle up to 90",
+)
 
 
-def _sprocket_teeth(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"{text!r} is not a tooth count; give the cam sprocket's teeth, e.g. 42"
-        ) from None
-    if not 2 <= value <= 400:
-        raise argparse.ArgumentTypeError(f"{text!r} teeth is outside 2..400; count the sprocket")
-    return value
+_sprocket_teeth = checked(
+    int, "a tooth count", "the cam sprocket's teeth, e.g. 42", lambda v: 2 <= v <= 400,
+    "{text} teeth is outside 2..400; count the sprocket",
+)
 
 
-def _angle(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an angle; give e.g. 276") from None
-    if not -360 < value < 360:
-        raise argparse.ArgumentTypeError(f"{text!r} deg CA is outside -360..360")
-    return value
+_angle = checked(
+    float, "an angle", "e.g. 276", lambda v: -360 < v < 360, "{text} deg CA is outside -360..360"
+)
 
 
-def _width(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number; give e.g. 100") from None
-    if value < 40:
-        raise argparse.ArgumentTypeError(f"{text!r} columns is too narrow; give 40 or more")
-    return value
+_width = checked(
+    int, "a whole number", "e.g. 100", lambda v: v >= 40,
+    "{text} columns is too narrow; give 40 or more",
+)
 
 
 def _plot_kinds(text: str) -> tuple[str, ...]:

@@ -33,6 +33,8 @@ from toothcomb.decoders.errors import UsageError
 from toothcomb.decoders.model import CaptureInfo, ChannelLevels
 from toothcomb.decoders.readers.memory import ArraySource, read_span
 
+from .argtypes import checked
+
 if TYPE_CHECKING:
     from .main import Streams
 
@@ -435,36 +437,20 @@ def render_preview(preview: Preview, console: Console, height: int = 4) -> None:
 # --------------------------------------------------------------------------- command
 
 
-def _revs(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number; give e.g. 2") from None
-    if not 1 <= value <= 50:
-        raise argparse.ArgumentTypeError(f"{text!r} revolutions is outside 1..50")
-    return value
+_revs = checked(
+    int, "a whole number", "e.g. 2", lambda v: 1 <= v <= 50, "{text} revolutions is outside 1..50"
+)
 
 
-def _start(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"{text!r} is not a time; give seconds, e.g. 1.5"
-        ) from None
-    if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more seconds")
-    return value
+_start = checked(
+    float, "a time", "seconds, e.g. 1.5", lambda v: math.isfinite(v) and v >= 0,
+    "{text} must be 0 or more seconds",
+)
 
 
-def _height(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number; give e.g. 4") from None
-    if not 1 <= value <= 20:
-        raise argparse.ArgumentTypeError(f"{text!r} rows is outside 1..20")
-    return value
+_height = checked(
+    int, "a whole number", "e.g. 4", lambda v: 1 <= v <= 20, "{text} rows is outside 1..20"
+)
 
 
 def add_preview_parser(
