@@ -458,10 +458,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(run=run_profiles)
 
     # plugins, preview (in their own modules)
+    from .patterns_cmd import add_patterns_parser
     from .plugins_cmd import add_plugins_parser
     from .preview import add_preview_parser
 
     add_plugins_parser(sub, _Formatter, EXIT_CODES_HELP)
+    add_patterns_parser(sub, _Formatter, EXIT_CODES_HELP)
     add_preview_parser(sub, _Formatter, EXIT_CODES_HELP)
 
     # batch (its own module): many captures, on this machine's cores or on Dask

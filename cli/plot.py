@@ -292,15 +292,21 @@ def _find_teeth(
     from toothcomb.decoders.levels import measure_levels
     from toothcomb.decoders.model import Edges
     from toothcomb.decoders.plugins import FRONTENDS, plugin
-    from toothcomb.decoders.wheels.missing_tooth import MissingToothSpec, decode_teeth
+    from toothcomb.decoders.wheels.missing_tooth import MissingToothSpec
+    from toothcomb.decoders.wheels.pattern import PatternSpec, decode_any, steps_from_teeth
 
     crank = result.crank
     fs = result.capture.sample_rate
     empty = np.empty(0)
+    spec: MissingToothSpec | PatternSpec
     try:
-        spec = MissingToothSpec(crank.positions, crank.missing)
+        if crank.is_missing_tooth:
+            spec = MissingToothSpec(crank.positions, crank.missing)
+        else:
+            positions, steps = steps_from_teeth(crank.teeth_deg)
+            spec = PatternSpec(crank.wheel, positions, steps)
     except UsageError:
-        why = f"teeth not marked: wheel {crank.wheel} is not N-M"
+        why = f"teeth not marked: wheel {crank.wheel} cannot be drawn again"
         return empty, empty.astype(int), empty, [], why
     info = CaptureInfo(result.capture.path, fs, len(window), (crank.channel,), "samples")
     levels = measure_levels(ArraySource(info, window[:, None]))[0]
@@ -309,7 +315,7 @@ def _find_teeth(
     edges = Edges.concat([frontend.process(window, first), frontend.finish()])
     direction = 1 if crank.event_direction == "rising" else -1
     events = edges.times[edges.direction == direction]
-    track = decode_teeth(events, spec)
+    track = decode_any(events, spec)
     if len(track.reference_times) == 0:
         return empty, empty.astype(int), events, [], "teeth not marked: the wheel did not decode"
     gaps = []

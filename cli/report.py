@@ -259,10 +259,18 @@ def render_crank(crank: CrankResult, console: Console) -> None:
     """The crank section: wheel, sensor, polarity, speed, sync and tooth-period jitter."""
     _heading(console, f"Crank - channel {crank.channel}")
     wheel = Text(crank.wheel, style="bold")
-    wheel.append(
-        f"  ({crank.positions} positions, {crank.missing} missing, "
-        f"pitch {fmt_deg(crank.pitch_deg)} CA)"
-    )
+    if crank.is_missing_tooth:
+        wheel.append(
+            f"  ({crank.positions} positions, {crank.missing} missing, "
+            f"pitch {fmt_deg(crank.pitch_deg)} CA)"
+        )
+        reference = "tooth 1, the first tooth after the gap"
+    else:
+        wheel.append(
+            f"  (library wheel: {crank.positions - crank.missing} teeth on {crank.positions} "
+            f"places of {fmt_deg(crank.pitch_deg)} CA)"
+        )
+        reference = f"tooth 1 of the {crank.wheel} pattern (`toothcomb patterns {crank.wheel}`)"
     rpm = crank.rpm
     refs = crank.reference_times_s
     ref_text = f"{len(refs)} found" + (
@@ -279,7 +287,7 @@ def render_crank(crank: CrankResult, console: Console) -> None:
         ("wheel", wheel),
         ("polarity", _polarity_text(crank)),
         ("event", _event_text(crank)),
-        ("reference", "tooth 1, the first tooth after the gap"),
+        ("reference", reference),
         (
             "engine speed",
             f"min {fmt_rpm(rpm.min)}  mean {fmt_rpm(rpm.mean)}  max {fmt_rpm(rpm.max)} rpm",
@@ -445,6 +453,33 @@ def edge_range(edge: CamEdge) -> float:
     return round(span, 9) if _finite(span) else 0.0
 
 
+def library_line(matches: Sequence[Any]) -> str:
+    """One line naming the pattern-library cam pattern that fits best (objects or dicts).
+
+    >>> from toothcomb.decoders.result import CamPatternMatch
+    >>> library_line([CamPatternMatch("quad-even", 152.5, False, 0.02, 0.03, True)])
+    "pattern: library 'quad-even' shifted +152.5° CA (rms 0.02°)"
+    >>> library_line([])
+    'pattern: no library pattern fits'
+    """
+    if not matches:
+        return "pattern: no library pattern fits"
+    best = matches[0]
+    text = (
+        f"pattern: library {_get(best, 'name')!r} shifted "
+        f"{fmt_deg(_get(best, 'shift_deg'), 1, sign=True)} CA "
+        f"(rms {fmt_deg(_get(best, 'rms_deg'), 2)})"
+    )
+    if _get(best, "inverted"):
+        text += ", sensor output low on a tooth"
+    if not _get(best, "phase_known", True):
+        text += "; cycle phase unknown, so the shift is known modulo 360°"
+    others = len({_get(m, "name") for m in matches[1:]} - {_get(best, "name")})
+    if others:
+        text += f"; {others} other pattern(s) fit too"
+    return text
+
+
 def _cam_notes(cam: CamResult) -> list[str]:
     notes: list[str] = []
     if cam.phase_source:
@@ -456,6 +491,8 @@ def _cam_notes(cam: CamResult) -> list[str]:
         span = 720.0 if any(e.revolution is not None for e in cam.edges) else 360.0
         windows = ", ".join(f"{fmt_deg(s, 1, unit=False)}-{fmt_deg(e, 1)}" for s, e in cam.pattern)
         notes.append(f"pattern ({span:.0f}° frame): {windows}")
+    if cam.edges:
+        notes.append(library_line(_get(cam, "library", ()) or ()))
     phaser = _get(cam, "phaser")
     notes.extend(_phaser_lines(phaser))
     spread = max((edge_range(e) for e in cam.edges), default=0.0)

@@ -28,6 +28,7 @@ import numpy as np
 
 from .actuators.pwm import PwmActuator, drive_side, steady_share
 from .analysis.actuator import analyse_valve
+from .analysis.campattern import cam_patterns, match_cam
 from .analysis.cams import (
     CamEvents,
     build_cam_result,
@@ -50,14 +51,16 @@ from .result import ActuatorResult, CamResult, CrankResult, DecodeResult, Findin
 from .wheels.base import ToothTrack
 from .wheels.missing_tooth import (
     MissingToothSpec,
-    ToothTracker,
-    decode_teeth,
     gap_candidates,
     gap_fit,
     identify,
     leading_direction,
     split_gaps,
 )
+from .wheels.pattern import PatternSpec, decode_any, library_wheels, make_tracker, score
+
+#: a crank wheel: an N-M wheel, or any tooth layout from the pattern library
+WheelSpec = MissingToothSpec | PatternSpec
 
 #: progress callback: (what, done, total)
 Progress = Callable[[str, int, int], None]
@@ -94,21 +97,27 @@ def read_probe(source: CaptureSource, n: int, block_size: int) -> np.ndarray:
     return np.concatenate(parts)
 
 
-def _wheel_from_hint(text: str) -> MissingToothSpec:
+def _wheel_from_hint(text: str) -> WheelSpec:
     for name, wheel in plugins(WHEELS).items():
         spec = wheel.parse(text)
         if spec is not None:
-            if not isinstance(spec, MissingToothSpec):
+            if not isinstance(spec, MissingToothSpec | PatternSpec):
                 raise UsageError(f"wheel {text!r} is a {name} pattern, which decode cannot use yet")
             return spec
     raise UsageError(
-        f"wheel {text!r} is not in a known notation; give it as N-M (e.g. 60-2, 36-1, 24-1)"
+        f"wheel {text!r} is not in a known notation; give it as N-M (e.g. 60-2, 36-1, 24-1), "
+        "a pattern library name (see `toothcomb patterns`) or a pattern file's path"
     )
 
 
-def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, int, float]:
+def _hint_score(times: np.ndarray, spec: WheelSpec) -> tuple[int, int, float]:
     """How well one direction's events show ``spec``'s gap: (whole gaps, gaps split by a runt
-    edge, minus the median misfit of the whole ones); larger is better, in that order."""
+    edge, minus the median misfit of the whole ones); larger is better, in that order. For a
+    library wheel: (tooth-1 matches one revolution apart, 0, minus their median misfit)."""
+    if isinstance(spec, PatternSpec):
+        sc = score(times, spec)
+        good = round(sc.confidence * max(sc.matches - 1, 0)) + (1 if sc.matches else 0)
+        return good, 0, -sc.misfit if sc.matches else -1.0
     whole = np.empty(0, dtype=int)
     cand = gap_candidates(times)
     m, err = gap_fit(times)
@@ -120,7 +129,7 @@ def _hint_score(times: np.ndarray, spec: MissingToothSpec) -> tuple[int, int, fl
 
 
 def crank_direction(
-    edges: Edges, sensor: str, wheel: MissingToothSpec | None = None
+    edges: Edges, sensor: str, wheel: WheelSpec | None = None
 ) -> tuple[int, str]:
     """Direction of the crank events the wheel is followed on, and the lead polarity.
 
@@ -129,11 +138,13 @@ def crank_direction(
     other direction splits it in two, so its largest ratio is smaller); rising centre crossings
     mean the leads are reversed.
     """
-    if sensor == "hall":
-        direction, _share = leading_direction(edges)
-        return direction, "normal"
     dirs = (1, -1)
     times = {d: edges.times[edges.direction == d] for d in dirs}
+    if sensor == "hall":
+        if isinstance(wheel, PatternSpec):
+            return _hall_pattern_direction(edges, wheel), "normal"
+        direction, _share = leading_direction(edges)
+        return direction, "normal"
     if wheel is not None:
         hint = {d: _hint_score(times[d], wheel) for d in dirs}
         direction = max(dirs, key=lambda d: (hint[d][0] > 0, hint[d][2], hint[d][1]))
@@ -150,7 +161,7 @@ class CrankPlan:
 
     channel: int
     sensor: str
-    spec: MissingToothSpec
+    spec: WheelSpec
     #: +1/-1: direction of the events the wheel is followed on
     direction: int
     polarity: str
@@ -163,21 +174,25 @@ def plan_crank(
     channel: int,
     sensor: str,
     name: str,
-    wheel: MissingToothSpec | None,
+    wheel: WheelSpec | None,
     sample_rate: float,
 ) -> CrankPlan:
     """Find the event direction and the wheel from the first seconds' edges."""
     findings: list[Finding] = []
+    if wheel is None:
+        lib = library_match(edges, sensor)
+        if lib is not None:
+            direction, polarity, found = lib
+            if polarity == "reversed":
+                findings.append(_vr_reversed(name))
+            how = (f"identified from the tooth periods as the library wheel {found.spec.name} "
+                   f"(confidence {found.confidence:.2f})")
+            findings += _flank_note(edges, sensor, found.spec, direction, name)
+            return CrankPlan(channel, sensor, found.spec, direction, polarity, how,
+                             tuple(findings))
     direction, polarity = crank_direction(edges, sensor, wheel)
     if polarity == "reversed":
-        findings.append(
-            Finding(
-                "warning",
-                "vr-reversed",
-                f"crank VR leads on {name} are reversed: tooth centres cross zero rising; "
-                "angles are measured on the correct crossings",
-            )
-        )
+        findings.append(_vr_reversed(name))
     t = edges.times[edges.direction == direction]
     guess = identify(t)
     if wheel is None:
@@ -203,6 +218,8 @@ def plan_crank(
     else:
         spec = wheel
         how = "given by the user"
+        if isinstance(wheel, PatternSpec):
+            guess = None  # the N-M guess says nothing about a library wheel
         if guess is not None and guess.spec != wheel and guess.confidence >= 0.8:
             findings.append(
                 Finding(
@@ -212,7 +229,94 @@ def plan_crank(
                     "given",
                 )
             )
-    return CrankPlan(channel, sensor, spec, direction, polarity, how, tuple(findings))
+    return CrankPlan(channel, sensor, spec, direction, polarity, how,
+                     tuple(findings) + _flank_note(edges, sensor, spec, direction, name))
+
+
+def _vr_reversed(name: str) -> Finding:
+    return Finding(
+        "warning",
+        "vr-reversed",
+        f"crank VR leads on {name} are reversed: tooth centres cross zero rising; "
+        "angles are measured on the correct crossings",
+    )
+
+
+#: least share of revolutions a library wheel must fit when it is identified without a hint
+# common practice, no source
+LIBRARY_CONFIDENCE = 0.8
+
+
+def library_match(edges: Edges, sensor: str) -> tuple[int, str, Any] | None:
+    """A library wheel (other than N-M ones, which ``identify`` finds from the gap alone) that
+    the edges show, with the event direction and lead polarity: (direction, polarity, score), or
+    None.
+
+    A candidate's tooth-1 matches must come once per revolution in most revolutions, at least
+    two; then the wheel is followed tooth by tooth through the edges, and kept only if that
+    loses sync at most once and finds no more odd teeth than a wrong ``--wheel`` hint is
+    allowed (a 60-2 wheel also shows a two-gap wheel's tooth-1 window, but not its second gap).
+    An N-M wheel that explains the teeth at least as well is preferred."""
+    dirs = (1, -1)
+    times = {d: edges.times[edges.direction == d] for d in dirs}
+    cands = []
+    for spec in library_wheels().values():
+        if not isinstance(spec, PatternSpec):
+            continue
+        for d in dirs:
+            sc = score(times[d], spec)
+            if sc.matches < 2 or sc.confidence < LIBRARY_CONFIDENCE:
+                continue
+            cands.append(((sc.confidence, sc.matches, -sc.misfit), d, sc))
+    for _key, d, sc in sorted(cands, key=lambda c: c[0], reverse=True):
+        track = decode_any(times[d], sc.spec)
+        revs = max(len(track.reference_times), 1)
+        if track.sync_losses > 1 or track.extra + track.missing > HINT_ODD_PER_REV * revs:
+            continue
+        guess = identify(times[d])
+        if guess is not None and guess.confidence >= sc.confidence:
+            return None  # an N-M wheel explains the teeth at least as well
+        if sensor == "hall":
+            d = _hall_pattern_direction(edges, sc.spec)
+            return d, "normal", score(times[d], sc.spec)
+        return d, "normal" if d == -1 else "reversed", sc
+    return None
+
+
+def _flank_note(
+    edges: Edges, sensor: str, spec: WheelSpec, direction: int, name: str
+) -> tuple[Finding, ...]:
+    """A note when a Hall crank's leading flank could not be told from the signal."""
+    if sensor != "hall" or not isinstance(spec, PatternSpec):
+        return ()
+    if leading_direction(edges)[1] >= 0.9:
+        return ()
+    flank = "rising" if direction > 0 else "falling"
+    return (
+        Finding(
+            "info",
+            "hall-flank-assumed",
+            f"the {spec.name} wheel on {name!r} has no long level once per revolution, so the "
+            f"signal does not show which flank a tooth starts with; the {flank} flanks are "
+            f"followed and tooth 1's {flank} flank is the reference event",
+        ),
+    )
+
+
+def _hall_pattern_direction(edges: Edges, spec: PatternSpec) -> int:
+    """The flank a library wheel is followed on, for a Hall crank. With long levels once or
+    more per revolution (gaps), the flank that ends them leads, as on an N-M wheel. Without
+    (an extra tooth), the signal does not show which level is a tooth: the one direction whose
+    events show the wheel, or the rising flanks when both do."""
+    direction, share = leading_direction(edges)
+    if share >= 0.9:
+        return direction
+    ok = [
+        d for d in (1, -1)
+        if (sc := score(edges.times[edges.direction == d], spec)).matches >= 2
+        and sc.confidence >= LIBRARY_CONFIDENCE
+    ]
+    return ok[0] if len(ok) == 1 else 1
 
 
 def _rate_needed(teeth_per_s: float) -> float:
@@ -349,7 +453,7 @@ def _pick_crank(
     edges: dict[int, Edges],
     looks: dict[int, ChannelLook],
     info: CaptureInfo,
-    wheel: MissingToothSpec | None = None,
+    wheel: WheelSpec | None = None,
 ) -> tuple[int, str]:
     """The crank channel: among the channels whose events show a plausible missing-tooth wheel
     (at least four positions, most revolutions agreeing; or the wheel given), the one with the
@@ -368,6 +472,8 @@ def _pick_crank(
         g = identify(t)
         if g is not None and g.spec.positions >= MIN_POSITIONS and g.confidence >= MIN_CONFIDENCE:
             plausible.append((len(e), c, g.spec.name))
+        elif (lib := library_match(e, looks[c].kind)) is not None:
+            plausible.append((len(e), c, lib[2].spec.name))
     if plausible:
         _n, c, name = max(plausible)
         return c, f"identified: the busiest channel whose tooth periods show a gap ({name})"
@@ -596,8 +702,8 @@ def decode_capture(
         for c in pwm:
             frontends[c] = _Clipped(frontends[c], levels[c])
         pwm_fe = {c: _Clipped(_frontend(as_pwm[c], fs, levels[c]), levels[c]) for c in maybe_pwm}
-        tracker = ToothTracker(plan.spec, offsets)
-        locator = CamLocator(max_pitches=plan.spec.missing + 1)
+        tracker = make_tracker(plan.spec, offsets)
+        locator = CamLocator(max_pitches=plan.spec.max_step)
         jitter = CrankJitter(plan.spec.pitch_deg)
         stats = CrankStats(info.duration_s)
         stats.findings.extend(early + offset_findings)
@@ -870,7 +976,7 @@ def _tooth_offsets(
 ) -> tuple[dict[int, float], list[Finding]]:
     """Teeth that sit away from their nominal angle (a wide tooth, a bent one), measured on the
     first seconds; angles between teeth are then interpolated from where they really are."""
-    track = decode_teeth(edges.times[edges.direction == plan.direction], plan.spec)
+    track = decode_any(edges.times[edges.direction == plan.direction], plan.spec)
     pitch = plan.spec.pitch_deg
     K = plan.spec.teeth
     # find the worst tooth, take it out of the fits, look again: at most two teeth
@@ -1032,7 +1138,7 @@ def _aliased(
     edges: dict[int, Edges],
     looks: dict[int, ChannelLook],
     info: CaptureInfo,
-    wheel: MissingToothSpec | None,
+    wheel: WheelSpec | None,
     crank: int | None,
 ) -> None:
     """Replace a failure by the sentence about aliasing when a cam shows an engine speed at which
@@ -1148,6 +1254,7 @@ def _result(
         wheel=plan.spec.name,
         positions=plan.spec.positions,
         missing=plan.spec.missing,
+        teeth_deg=plan.spec.teeth_deg,
         polarity=plan.polarity,  # type: ignore[arg-type]
         event_direction="rising" if plan.direction > 0 else "falling",
         rpm=rpm,
@@ -1203,6 +1310,8 @@ def _result(
             )
         )
     cam_results: list[CamResult] = []
+    # the pattern library's cam patterns (a broken user file is a UsageError, exit 2)
+    library = cam_patterns() if cams else {}
     for c in cams:
         name = info.channels[c]
         st = state[c]
@@ -1237,6 +1346,7 @@ def _result(
             name, sensor, located[c], shift, st.leading, fnd,  # type: ignore[arg-type]
             phase_source=(c == source_cam),
         )
+        cam = replace(cam, library=tuple(match_cam(cam, library)))
         cam_results.append(with_phaser(cam, crank_result.rpm_trace, parked=parked))
         choices[f"cam {name}"] = _sensor_choice(looks[c])
     actuators: list[ActuatorResult] = []

@@ -26,7 +26,7 @@ one by name raises its error, and :func:`describe_plugins` lists it with the err
 >>> sorted(plugins(FRONTENDS))
 ['hall', 'vr']
 >>> [(p.name, p.ok) for p in describe_plugins(WHEELS)]
-[('missing-tooth', True)]
+[('missing-tooth', True), ('pattern', True)]
 """
 
 from __future__ import annotations
@@ -84,6 +84,7 @@ _BUILTIN: dict[str, dict[str, str]] = {
     },
     WHEELS: {
         "missing-tooth": "toothcomb.decoders.wheels.missing_tooth:MissingToothWheel",
+        "pattern": "toothcomb.decoders.wheels.pattern:PatternWheel",
     },
     ACTUATORS: {
         "pwm": "toothcomb.decoders.actuators.pwm:PwmActuator",
@@ -284,7 +285,7 @@ def clear_cache() -> None:
     """Forget what was discovered, so that plugins installed since are found.
 
     >>> clear_cache(); sorted(plugins(WHEELS))
-    ['missing-tooth']
+    ['missing-tooth', 'pattern']
     """
     discover.cache_clear()
 

@@ -398,6 +398,39 @@ class ActuatorResult:
 
 
 @dataclass(frozen=True)
+class CamPatternMatch:
+    """A pattern-library cam pattern that fits a measured cam (``analysis.campattern``).
+
+    >>> CamPatternMatch("quad-even", 152.5, False, 0.02, 0.03, True).to_json()["shift_deg"]
+    152.5
+    """
+
+    #: the library pattern's name
+    name: str
+    #: turn that maps the library pattern onto the measurement: measured angle = library angle
+    #: + shift (deg CA, mod 720 on the cycle, mod 360 when the cycle phase is unknown); given
+    #: as the smallest such turn, 0 <= shift < the pattern's own repeat angle
+    shift_deg: float
+    #: True when the sensor's output is low while a tooth/window passes (rising and falling swap)
+    inverted: bool
+    #: misfit of the edges after the shift, rms and largest, deg CA
+    rms_deg: float
+    max_deg: float
+    #: False when the cycle phase is unknown: matched per revolution, shift known modulo 360
+    phase_known: bool
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "shift_deg": self.shift_deg,
+            "inverted": self.inverted,
+            "rms_deg": self.rms_deg,
+            "max_deg": self.max_deg,
+            "phase_known": self.phase_known,
+        }
+
+
+@dataclass(frozen=True)
 class CamResult:
     """Everything measured on one cam channel."""
 
@@ -414,6 +447,8 @@ class CamResult:
     phaser: PhaserResult | None = None
     #: the phaser's valve command and how the cam followed it, when it was recorded
     actuator: ActuatorResult | None = None
+    #: pattern-library cam patterns that fit this cam, best first (empty: none fits)
+    library: tuple[CamPatternMatch, ...] = ()
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -421,6 +456,7 @@ class CamResult:
             "sensor": self.sensor,
             "edges": [e.to_json() for e in self.edges],
             "pattern_deg": [list(w) for w in self.pattern],
+            "library_matches": [m.to_json() for m in self.library],
             "phase_source": self.phase_source,
             "findings": [f.to_json() for f in self.findings],
             "phaser": self.phaser.to_json() if self.phaser is not None else None,
@@ -466,10 +502,24 @@ class CrankResult:
     findings: tuple[Finding, ...] = ()
     #: (time_s, rpm) per tooth interval (mid-time), thinned to one per time bucket on long captures
     rpm_trace: tuple[tuple[float, float], ...] = ()
+    #: every tooth's angle after tooth 1 (deg CA); empty when not known (an N-M wheel is then
+    #: drawn from ``positions`` and ``missing``)
+    teeth_deg: tuple[float, ...] = ()
 
     @property
     def pitch_deg(self) -> float:
         return 360.0 / self.positions
+
+    @property
+    def is_missing_tooth(self) -> bool:
+        """True for an N-M wheel (one gap of ``missing`` teeth)."""
+        n = self.positions - self.missing
+        if not self.teeth_deg:
+            return True
+        nominal = [k * 360.0 / self.positions for k in range(n)]
+        return len(self.teeth_deg) == n and all(
+            abs(a - b) < 1e-6 for a, b in zip(self.teeth_deg, nominal, strict=True)
+        )
 
     def to_json(self) -> dict[str, Any]:
         d: dict[str, Any] = {
@@ -485,6 +535,7 @@ class CrankResult:
             "extra_teeth": self.extra_teeth,
             "missing_teeth": self.missing_teeth,
             "reference_times_s": list(self.reference_times_s),
+            "teeth_deg": list(self.teeth_deg),
             "rpm_per_tooth": {
                 "time_s": [t for t, _ in self.rpm_trace],
                 "rpm": [r for _, r in self.rpm_trace],

@@ -391,7 +391,7 @@ def test_broken_plugins_are_named_and_do_not_break_the_others(
     # the working ones are all there, the third-party reader too
     assert {"audio", "csv", "hdf5", "vcd", "mu"} <= set(plugins(READERS))
     assert set(plugins(FRONTENDS)) == {"hall", "vr"}
-    assert set(plugins(WHEELS)) == {"missing-tooth"}
+    assert set(plugins(WHEELS)) == {"missing-tooth", "pattern"}
 
     # the listing shows them with their errors, and still lists everything else
     assert main(["plugins", "--json"]) == 0
@@ -454,7 +454,7 @@ def test_reader_with_bad_extensions_and_unknown_names(monkeypatch: pytest.Monkey
             type("Odd", (), {"name": "odd", "extensions": ".x", "detect": len, "open": len}),
         )
     with pytest.raises(PluginError, match=r"no plugin 'nope' in group toothcomb\.wheels \(there "
-                                          r"are: missing-tooth\)"):
+                                          r"are: missing-tooth, pattern\)"):
         plugin(WHEELS, "nope")
     with pytest.raises(PluginError, match=r"no plugin group 'toothcomb\.other'"):
         plugins("toothcomb.other")

@@ -333,6 +333,17 @@ def parse_nm(text: str) -> tuple[int, int]:
     return n, k
 
 
+def _library_teeth(name: str) -> tuple[float, ...] | None:
+    """Tooth angles of a crank wheel from the pattern library (a name or a .toml path), or
+    None when the library has no such wheel."""
+    from ..wheels.pattern import PatternWheel
+
+    spec = PatternWheel.parse(name)
+    if spec is None:
+        return None
+    return tuple(float(a) for a in spec.teeth_deg)
+
+
 @dataclass(frozen=True)
 class DamagedTooth:
     """A damaged crank tooth: ``weak`` (smaller VR flux bump; a Hall sensor does not notice) or
@@ -415,6 +426,8 @@ class CrankWheel:
                 raise UsageError(
                     f"teeth_deg {list(t)!r} must hold at least 2 strictly rising angles below 360"
                 )
+        elif not _NM.match(self.wheel) and (lib := _library_teeth(self.wheel)) is not None:
+            object.__setattr__(self, "teeth_deg", lib)
         else:
             parse_nm(self.wheel)
         _finite("tooth1_deg", self.tooth1_deg)

@@ -225,12 +225,29 @@ def n_plus_one(
     return _norm([eq[0], extra, *eq[1:]])
 
 
+def library_pattern(name: str, shift_deg: float = 0.0) -> tuple[tuple[float, float], ...]:
+    """The windows of the pattern library's cam pattern ``name`` (a name or a .toml path),
+    turned by ``shift_deg`` (mod 720).
+
+    >>> library_pattern("single-tooth", 710.0)
+    ((710.0, 730.0),)
+    """
+    from ..analysis.campattern import cam_pattern_spec
+
+    spec = cam_pattern_spec(name)
+    return _norm([(s + shift_deg, e + shift_deg) for s, e in spec.windows])
+
+
 _PATTERNS: dict[str, tuple[Any, tuple[str, ...]]] = {
     "single": (single_tooth, ("at_deg", "width_deg")),
     "half_moon": (half_moon, ("start_deg",)),
     "equal": (equal_teeth, ("n", "first_deg", "width_deg")),
     "n_plus_one": (n_plus_one, ("n", "first_deg", "width_deg", "extra_after_deg")),
+    # a cam pattern of the pattern library (``name``: a library name or a .toml path)
+    "library": (library_pattern, ("name", "shift_deg")),
 }
+#: keys whose value is text, not a number
+_TEXT_KEYS = ("name",)
 
 
 def cam_pattern(spec: Mapping[str, Any], where: str = "pattern") -> tuple[tuple[float, float], ...]:
@@ -250,6 +267,12 @@ def cam_pattern(spec: Mapping[str, Any], where: str = "pattern") -> tuple[tuple[
     for k, v in args.items():
         if k not in keys:
             raise UsageError(f"{where}.{k} is not a key of a {kind} pattern; use {', '.join(keys)}")
+        if k in _TEXT_KEYS:
+            if not isinstance(v, str) or not v.strip():
+                raise UsageError(
+                    f"{where}.{k} {v!r} is not a pattern name; give a library name or a .toml path"
+                )
+            continue
         if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
             raise UsageError(f"{where}.{k} {v!r} is not a number; give a number")
     if "n" in args and (int(args["n"]) != args["n"] or not 1 <= args["n"] <= 64):
@@ -258,6 +281,8 @@ def cam_pattern(spec: Mapping[str, Any], where: str = "pattern") -> tuple[tuple[
         raise UsageError(f"{where}.n is missing; give the tooth count of the {kind} pattern")
     if "at_deg" in keys and "at_deg" not in args:
         raise UsageError(f"{where}.at_deg is missing; give the angle of the tooth")
+    if "name" in keys and "name" not in args:
+        raise UsageError(f"{where}.name is missing; give a library cam pattern name or .toml path")
     if "n" in args:
         args["n"] = int(args["n"])
     return fn(**args)

@@ -93,6 +93,21 @@ class MissingToothSpec:
         """Pitches from ``tooth`` (1-based) to the next tooth on the wheel."""
         return self.missing + 1 if tooth == self.teeth else 1
 
+    @property
+    def steps(self) -> tuple[int, ...]:
+        """Pitches from each tooth to the next, tooth 1 first (the last one crosses the gap)."""
+        return (1,) * (self.teeth - 1) + (self.missing + 1,)
+
+    @property
+    def max_step(self) -> int:
+        """The most pitches between two neighbouring teeth."""
+        return self.missing + 1
+
+    @property
+    def teeth_deg(self) -> tuple[float, ...]:
+        """Angle of every tooth after tooth 1 (deg)."""
+        return tuple(k * self.pitch_deg for k in range(self.teeth))
+
     def span(self, tooth: int, n: int) -> int:
         """Pitches from ``tooth`` to the tooth ``n`` teeth later."""
         full, rest = divmod(n, self.teeth)
@@ -451,6 +466,8 @@ class ToothTracker:
         self._hist: list[tuple[float, float, float]] = []
         self._run = -1
         self._extra = self._missing = self._losses = 0
+        #: events before the search position that the search for tooth 1 looks back to
+        self._behind = 2
 
     # -- public ------------------------------------------------------------------------------
 
@@ -474,50 +491,9 @@ class ToothTracker:
         i = self._i
         while i < n - 1:
             if not self._synced:
-                # a gap interval g is judged with two intervals on each side: t[g - 2] ..
-                # t[g + 3] (at the very end of the capture, with what there is)
-                lo = max(i, 1)
-                hi = n - 3 if final else n - 4
-                if hi < lo:
+                i, found = self._sync(t, i, n, final, out)
+                if not found:
                     break
-                first = max(lo - 2, 0)
-                seg = t[first : hi + 4]
-                cand = gap_candidates(seg) + first
-                cand = cand[(cand >= lo) & (cand <= hi)]
-                if len(cand):
-                    m_fit, _ = gap_fit(seg)
-                    cand = cand[m_fit[cand - first] == spec.missing]
-                split = split_gaps(t, lo, hi, spec.missing)
-                if len(cand) == 0 and len(split) == 0:
-                    i = max(i, hi + 1)
-                    break
-                g = int(min(cand.min() if len(cand) else n, split.min() if len(split) else n))
-                runt = len(cand) == 0 or g not in set(cand.tolist())
-                i = g + 1  # tooth 1
-                self._run += 1
-                self._synced = True
-                self._tooth = 1
-                self._angle = 0.0
-                gap_t = t[g + 1] - t[g - 1] if runt else t[g + 1] - t[g]
-                before = t[g - 1] - t[g - 2] if runt else t[g] - t[g - 1]
-                after = t[g + 2] - t[g + 1]
-                # the interval after tooth 1 was looked at to judge the gap: start from it
-                self._p_last = self._p_prev = float(after)
-                gap = spec.missing + 1.0
-                self._hist = [(-gap - 1.0, -gap, float(before)), (-gap, 0.0, float(gap_t))]
-                if runt:
-                    self._extra += 1
-                    out.findings.append(
-                        Finding(
-                            "info",
-                            "extra-edge",
-                            f"an edge at {t[g]:.4f} s inside the crank gap is not a tooth (a runt "
-                            "pulse) and was ignored",
-                            float(t[g]),
-                        )
-                    )
-                out.tooth(t[i], 0.0, self._run, 1, 0)
-                out.refs.append(float(t[i]))
                 continue
 
             # fast path: whole clean revolutions from tooth 1, as many as have arrived
@@ -537,7 +513,7 @@ class ToothTracker:
             i = out.last_i
 
         # keep what later decisions may look back to (a gap is judged with t[g - 1])
-        drop = max(0, min(i, n) - 2)
+        drop = max(0, min(i, n) - self._behind)
         self._t = t[drop:]
         self._i = i - drop
         track = out.track(spec.pitch_deg, self)
@@ -557,6 +533,55 @@ class ToothTracker:
             )
         return track
 
+    def _sync(self, t: np.ndarray, i: int, n: int, final: bool, out: _Out) -> tuple[int, bool]:
+        """Look for tooth 1 from ``t[i]`` on; when found, start a sync run there (tooth 1
+        decided and emitted) and return (its index, True), else (where to look next, False)."""
+        spec = self.spec
+        # a gap interval g is judged with two intervals on each side: t[g - 2] ..
+        # t[g + 3] (at the very end of the capture, with what there is)
+        lo = max(i, 1)
+        hi = n - 3 if final else n - 4
+        if hi < lo:
+            return i, False
+        first = max(lo - 2, 0)
+        seg = t[first : hi + 4]
+        cand = gap_candidates(seg) + first
+        cand = cand[(cand >= lo) & (cand <= hi)]
+        if len(cand):
+            m_fit, _ = gap_fit(seg)
+            cand = cand[m_fit[cand - first] == spec.missing]
+        split = split_gaps(t, lo, hi, spec.missing)
+        if len(cand) == 0 and len(split) == 0:
+            return max(i, hi + 1), False
+        g = int(min(cand.min() if len(cand) else n, split.min() if len(split) else n))
+        runt = len(cand) == 0 or g not in set(cand.tolist())
+        i = g + 1  # tooth 1
+        self._run += 1
+        self._synced = True
+        self._tooth = 1
+        self._angle = 0.0
+        gap_t = t[g + 1] - t[g - 1] if runt else t[g + 1] - t[g]
+        before = t[g - 1] - t[g - 2] if runt else t[g] - t[g - 1]
+        after = t[g + 2] - t[g + 1]
+        # the interval after tooth 1 was looked at to judge the gap: start from it
+        self._p_last = self._p_prev = float(after)
+        gap = spec.missing + 1.0
+        self._hist = [(-gap - 1.0, -gap, float(before)), (-gap, 0.0, float(gap_t))]
+        if runt:
+            self._extra += 1
+            out.findings.append(
+                Finding(
+                    "info",
+                    "extra-edge",
+                    f"an edge at {t[g]:.4f} s inside the crank gap is not a tooth (a runt "
+                    "pulse) and was ignored",
+                    float(t[g]),
+                )
+            )
+        out.tooth(t[i], 0.0, self._run, 1, 0)
+        out.refs.append(float(t[i]))
+        return i, True
+
     def _clean_revolutions(self, t: np.ndarray, i: int, available: int, out: _Out) -> int:
         """Take the whole revolutions that follow tooth 1 at ``t[i]`` while each is clean:
         every pitch period (the gap counted as M + 1 pitches) within 25 % of the one before it.
@@ -567,8 +592,7 @@ class ToothTracker:
             return 0
         spec = self.spec
         K = spec.teeth
-        steps = np.ones(K)
-        steps[-1] = spec.missing + 1
+        steps = np.asarray(spec.steps, dtype=float)
         T = np.diff(t[i : i + available * K + 1])
         q = T / np.tile(steps, available)
         if not abs(math.log(q[0] / self._p_last)) < 0.25:
