@@ -23,7 +23,16 @@ from toothcomb.cli.main import main
 from toothcomb.decoders.errors import UsageError
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.patterns import ENV, entries, parse_text
-from toothcomb.decoders.simulate import ConstantSpeed, CrankingSpeed, DamagedTooth, HallSensor
+from toothcomb.decoders.simulate import (
+    Channel,
+    ConstantSpeed,
+    CrankingSpeed,
+    DamagedTooth,
+    Dropout,
+    HallSensor,
+    IgnitionSpikes,
+    Instrument,
+)
 from toothcomb.decoders.wheels.base import ToothTrack
 from toothcomb.decoders.wheels.missing_tooth import MissingToothSpec
 from toothcomb.decoders.wheels.pattern import (
@@ -226,6 +235,63 @@ def test_library_wheels_are_identified_and_followed(tmp_path, wheel, sensor, spe
     assert np.max(err_deg) < 0.3, err_deg
     errs = cam_errors(r, truth)
     assert max(errs.values()) < 0.3, errs
+    # a Hall wheel without a gap does not show which flank starts a tooth: said, not hidden
+    gapless = wheel in ("12+1", "36+1") and sensor == "hall"
+    assert ("hall-flank-assumed" in finding_codes(r)) == gapless
+
+
+HARSH = {
+    "vr-leads-reversed": dict(
+        crank_channel=Channel(name="crank", source="crank", noise_v=0.003, reversed=True)
+    ),
+    "ignition-spikes": dict(
+        spikes=IgnitionSpikes(angle_deg=-10.0, amplitude_v=5.0, tau_s=20e-6),
+        instrument=Instrument(kind="float", sample_rate=100_000.0),
+    ),
+    "hall-noise": dict(
+        crank_sensor=HallSensor(),
+        crank_channel=Channel(name="crank", source="crank", noise_v=0.5),
+    ),
+    "dropout": dict(
+        speed=ConstantSpeed(rpm=250.0, ripple=0.02),
+        crank_channel=Channel(
+            name="crank", source="crank", noise_v=0.003,
+            dropouts=(Dropout(t_s=1.0, duration_s=0.008),),
+        ),
+    ),
+}
+
+
+@pytest.mark.parametrize(
+    "wheel,condition",
+    [
+        ("tri-gap-36", "vr-leads-reversed"),
+        ("tri-gap-36", "ignition-spikes"),
+        ("twin-gap-60", "dropout"),
+        ("twin-gap-60", "hall-noise"),
+        ("12+1", "ignition-spikes"),
+        ("36+1", "dropout"),
+    ],
+)
+def test_library_wheels_under_harsh_conditions(tmp_path, wheel, condition):
+    """Cranking at 200 rpm with 25 % ripple unless the condition sets its own speed: every
+    tooth 1 the capture holds is found within 1 deg CA and the cam within 1 deg CA (the
+    tolerance of the harsh N-M cases)."""
+    kw: dict = {"speed": CrankingSpeed(rpm=200.0, ripple=0.25), "crank_sensor": vr()}
+    kw.update(HARSH[condition])
+    r, truth = decode(tmp_path, engine(wheel=wheel, duration_s=2.0, **kw))
+    spec = PatternWheel.parse(wheel)
+    assert r.crank.wheel == wheel and r.crank.sync_losses == 0
+    want = window_references(truth, spec.window)
+    got = np.asarray(r.crank.reference_times_s)
+    assert len(want) >= 4 and len(got) == len(want)
+    assert np.max(np.abs(got - want) * 6.0 * local_rpm(truth, want)) < 1.0
+    assert max(cam_errors(r, truth).values()) < 1.0
+    codes = finding_codes(r)
+    if condition == "vr-leads-reversed":
+        assert r.crank.polarity == "reversed" and "vr-reversed" in codes
+    if condition == "dropout":
+        assert r.crank.missing_teeth >= 1 and "missing-teeth" in codes
 
 
 def test_given_by_name_or_by_file_the_wheel_decodes_the_same(tmp_path):
