@@ -377,29 +377,38 @@ def expected_shifts(
     ``ref + 360``. So cycle angle = library angle + shift_deg + offset_deg - ref - 360 k, and the
     reported turn is ``shift_deg + offset_deg - ref - 360 k`` (mod the pattern's repeat). The
     decoder's documented convention (analysis/cams.py) picks k: revolution 0 holds more leading
-    flanks, then more events, then the earlier first leading flank. When both choices tie on all
-    three (quad-two-width: each revolution has a tooth at the same two places, only their widths
-    differ) the decoder's revolution 0 is simply the first one of its sync run, so both turns
-    are accepted.
+    flanks, then more events, then the earlier first leading flank, then the wider teeth
+    (quad-two-width: each revolution has a tooth at the same two places, only their widths
+    differ); angles within 2 deg count as equal. When even that ties (a VR cam shows no widths)
+    the decoder's revolution 0 is the first one of its sync run, so both turns are accepted.
     """
     cam = sc.cams[0]
     base = (shift_deg + cam.offset_deg - reference_angle(sc)) % 720.0
 
-    def key(turn: float) -> tuple[int, int, float]:
+    def key(turn: float) -> tuple[int, int, float, float]:
         if vr:
             lead = [((s + e) / 2.0 + turn) % 720.0 for s, e in spec.windows]
             events = lead
+            widths = [0.0 for _ in lead]
         else:  # narrow teeth: the window's start is the leading flank, whatever the polarity
             lead = [(s + turn) % 720.0 for s, _ in spec.windows]
             events = lead + [(e + turn) % 720.0 for _, e in spec.windows]
+            widths = [e - s for s, e in spec.windows]
         lead0 = [a for a in lead if a < 360.0]
-        return len(lead0), sum(a < 360.0 for a in events), -min(lead0, default=720.0)
+        tooth0 = sum(w for a, w in zip(lead, widths, strict=True) if a < 360.0)
+        return len(lead0), sum(a < 360.0 for a in events), min(lead0, default=720.0), tooth0
 
     if not fixes_phase(spec):
         return [base % repeat_deg(spec)]
     turns = (base, (base + 360.0) % 720.0)
-    top = max(key(x) for x in turns)
-    return [x for x in turns if key(x) == top]
+    a, b = key(turns[0]), key(turns[1])
+    if a[:2] != b[:2]:
+        return [turns[0] if a[:2] > b[:2] else turns[1]]
+    if abs(a[2] - b[2]) > 2.0:
+        return [turns[0] if a[2] < b[2] else turns[1]]
+    if abs(a[3] - b[3]) > 2.0:
+        return [turns[0] if a[3] > b[3] else turns[1]]
+    return list(turns)
 
 
 def circ(a: float, b: float, period: float) -> float:

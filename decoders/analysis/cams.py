@@ -7,7 +7,8 @@ parity is "revolution 0" is something only the cam pattern can tell:
 
 - A cam whose pattern differs between the two revolutions (a single tooth, a half-moon, an N+1
   pattern) fixes the cycle phase. By toothcomb's convention revolution 0 is the one holding more
-  of the cam's leading flanks (then: more events; then: the earlier first leading flank).
+  of the cam's leading flanks (then: more events; then: the earlier first leading flank; then:
+  the wider teeth, for teeth at the same places in both revolutions).
 - A pattern that repeats every 360 deg (four equal teeth) cannot: its edges are reported with
   ``revolution = None`` unless another cam of the same capture fixed the phase.
 
@@ -309,8 +310,8 @@ def choose_phase(ev: CamEvents, leading: int) -> dict[int, int]:
     biggest = int(max(runs, key=lambda r: np.count_nonzero(ev.run == r)))
     sel = ev.run == biggest
     sub = ev.select(sel)
-    best_shift, best_key = 0, None
     patterns = {}
+    keys = {}
     for s in (0, 1):
         cyc, full = _cycles(sub, {biggest: s}, 720.0)
         cl = _clusters(sub, sub.cycle_angle({biggest: s}), 720.0, cyc, full)
@@ -318,9 +319,8 @@ def choose_phase(ev: CamEvents, leading: int) -> dict[int, int]:
         rev0 = [c for c in cl if c.centre < 360.0]
         lead0 = [c for c in rev0 if c.direction == leading]
         first_lead = min((c.centre for c in lead0), default=720.0)
-        key = (len(lead0), len(rev0), -first_lead)
-        if best_key is None or key > best_key:
-            best_key, best_shift = key, s
+        keys[s] = (len(lead0), len(rev0), first_lead, _tooth_deg(cl, leading))
+    best_shift = _pick_revolution_0(keys[0], keys[1])
     shift = {biggest: best_shift}
     ref = patterns[best_shift]
     for r in runs:
@@ -341,6 +341,42 @@ def choose_phase(ev: CamEvents, leading: int) -> dict[int, int]:
             costs.append(cost)
         shift[r] = int(np.argmin(costs))
     return shift
+
+
+#: two angles closer than this (deg) are taken as equal when the cycle phase is chosen
+PHASE_TIE_DEG = 2.0
+
+
+def _tooth_deg(clusters: list[_Cluster], leading: int) -> float:
+    """Degrees of tooth (from each leading flank to the next trailing one) that start in
+    revolution 0 (0..360) of a cycle-angle layout."""
+    lead = [c.centre for c in clusters if c.direction == leading and c.centre < 360.0]
+    trail = [c.centre for c in clusters if c.direction != leading]
+    if not trail:
+        return 0.0
+    return float(sum(min((t - a) % 720.0 for t in trail) for a in lead))
+
+
+def _pick_revolution_0(
+    a: tuple[int, int, float, float], b: tuple[int, int, float, float]
+) -> int:
+    """0 or 1: which of two layouts (leading flanks, events, first leading flank, tooth degrees
+    in revolution 0) follows the convention: more leading flanks, then more events, then the
+    earlier first leading flank, then more tooth -- angles within PHASE_TIE_DEG count as equal,
+    so measurement noise never decides.
+
+    >>> _pick_revolution_0((2, 4, 10.0, 30.0), (2, 4, 10.5, 90.0))   # wider teeth in b
+    1
+    >>> _pick_revolution_0((1, 2, 40.0, 30.0), (1, 2, 120.0, 70.0))  # a's flank comes first
+    0
+    """
+    if a[:2] != b[:2]:
+        return 0 if a[:2] > b[:2] else 1
+    if abs(a[2] - b[2]) > PHASE_TIE_DEG:
+        return 0 if a[2] < b[2] else 1
+    if abs(a[3] - b[3]) > PHASE_TIE_DEG:
+        return 0 if a[3] > b[3] else 1
+    return 0
 
 
 def build_cam_result(
