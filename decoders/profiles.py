@@ -412,16 +412,23 @@ def _wheel(ck: _Checker, value: Any, where: str, *, strict: bool) -> str:
     text = ck.text(value, where, ())
     m = _NM.match(text)
     if not m:
-        if strict:
+        if strict and text not in _library_wheel_names():
             raise ck.fail(
-                where, f"{text!r} is not in N-M notation; write it like '60-2' or '36-1', or "
-                "give crank.teeth_deg for other shapes"
+                where, f"{text!r} is not in N-M notation nor a library wheel; write it like "
+                "'60-2' or '36-1', name a wheel that `toothcomb patterns` lists, or give "
+                "crank.teeth_deg for other shapes"
             )
         return text
     n, k = int(m.group(1)), int(m.group(2))
     if not (2 <= n <= 360 and 1 <= k <= n - 2):
         raise ck.fail(where, f"{text!r} is not a usable N-M wheel; N must be 2..360, M 1..N-2")
     return f"{n}-{k}"
+
+
+def _library_wheel_names() -> set[str]:
+    from .patterns import entries
+
+    return set(entries("crank"))
 
 
 def _crank_teeth(ck: _Checker, value: Any, where: str) -> tuple[float, ...]:
@@ -813,10 +820,14 @@ def profile_data_from_decode_json(
         )
     wheel = crank.get("wheel")
     out: dict[str, Any] = {"format": FORMAT, "version": VERSION, "name": Path(source).stem}
+    teeth = crank.get("teeth_deg")
     if isinstance(wheel, str) and _NM.match(wheel):
         out["crank"] = {"wheel": wheel}
-        if crank.get("sensor") in SENSORS:
-            out["crank"]["sensor"] = crank["sensor"]
+    elif isinstance(wheel, str) and isinstance(teeth, list) and len(teeth) >= 2:
+        # a library wheel: its name, and its teeth so that the profile stands on its own
+        out["crank"] = {"wheel": wheel, "teeth_deg": teeth}
+    if "crank" in out and crank.get("sensor") in SENSORS:
+        out["crank"]["sensor"] = crank["sensor"]
     learned: dict[str, Any] = {}
     if isinstance(capture.get("path"), str):
         learned["capture"] = capture["path"]

@@ -375,3 +375,34 @@ def test_patterns_lists_every_built_in_and_shows_one_as_a_file_to_copy(tmp_path)
     assert (again.positions, again.steps) == (built_in.positions, built_in.steps)
     code, _, err = run_cli(["patterns", "no-such-thing"])
     assert code == 2 and "no pattern 'no-such-thing'" in err
+
+
+# -- profiles and verdicts ------------------------------------------------------------------------
+
+
+def test_a_library_wheel_in_a_profile_and_a_known_good_decode(tmp_path):
+    """A profile may name a library wheel; a known-good decode of a library wheel is a
+    reference that carries the wheel's teeth, and a second capture of the same engine compares
+    as in time."""
+    from toothcomb.decoders.profiles import load_reference, loads_profile
+    from toothcomb.decoders.verdict import compare
+
+    head = 'format = "toothcomb-profile"\nversion = 1\nname = "p"\n'
+    cams = "[[cams]]\nname = \"cam\"\nchannel = \"cam\"\npattern = [[100.0, 200.0]]\n"
+    assert loads_profile(head + '[crank]\nwheel = "tri-gap-36"\n' + cams).wheel == "tri-gap-36"
+    with pytest.raises(UsageError, match="nor a library wheel"):
+        loads_profile(head + '[crank]\nwheel = "no-such-wheel"\n' + cams)
+
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    good, _ = decode(tmp_path / "a", engine(wheel="twin-gap-60", duration_s=1.5, seed=1))
+    ref = tmp_path / "good.json"
+    ref.write_text(json.dumps(good.to_json()))
+    profile = load_reference(ref)
+    assert profile.wheel == "twin-gap-60"
+    assert profile.crank_teeth_deg == PatternWheel.parse("twin-gap-60").teeth_deg
+    again, _ = decode(tmp_path / "b", engine(wheel="twin-gap-60", duration_s=1.5, seed=2))
+    verdict = compare(again, profile).verdict
+    assert verdict is not None and verdict.in_time, verdict.sentences
+    assert [c.status for c in verdict.cams] == ["in-time"]
+    assert abs(verdict.cams[0].shift_deg) < 0.1
