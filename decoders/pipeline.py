@@ -247,18 +247,34 @@ def _vr_reversed(name: str) -> Finding:
 LIBRARY_CONFIDENCE = 0.8
 
 
+def _odd_per_rev(track: ToothTrack) -> float:
+    """Extra and missing teeth per revolution of a decode, a lost sync counting as ten."""
+    revs = max(len(track.reference_times), 1)
+    return (track.extra + track.missing + 10 * track.sync_losses) / revs
+
+
 def library_match(edges: Edges, sensor: str) -> tuple[int, str, Any] | None:
     """A library wheel (other than N-M ones, which ``identify`` finds from the gap alone) that
     the edges show, with the event direction and lead polarity: (direction, polarity, score), or
     None.
 
-    A candidate's tooth-1 matches must come once per revolution in most revolutions, at least
-    two; then the wheel is followed tooth by tooth through the edges, and kept only if that
-    loses sync at most once and finds no more odd teeth than a wrong ``--wheel`` hint is
-    allowed (a 60-2 wheel also shows a two-gap wheel's tooth-1 window, but not its second gap).
-    An N-M wheel that explains the teeth at least as well is preferred."""
+    When the gap alone identifies an N-M wheel surely and the teeth follow it without a single
+    odd tooth, nothing is looked for. Otherwise a candidate's tooth-1 matches must come once per
+    revolution in most revolutions, at least two; the wheel is then followed tooth by tooth
+    through the edges, and kept only if that loses sync at most once, finds no more odd teeth
+    than a wrong ``--wheel`` hint is allowed (a 60-2 wheel also shows a two-gap wheel's tooth-1
+    window, but not its second gap), and fewer than the N-M wheel's decode does."""
     dirs = (1, -1)
     times = {d: edges.times[edges.direction == d] for d in dirs}
+    nm_odd = math.inf
+    # the N-M wheel on the direction an N-M decode would follow: on a clean wheel it ends the
+    # search at once
+    d_nm, _polarity = crank_direction(edges, sensor)
+    guess = identify(times[d_nm])
+    if guess is not None and guess.confidence >= MIN_CONFIDENCE:
+        nm_odd = _odd_per_rev(decode_any(times[d_nm], guess.spec))
+        if nm_odd == 0.0 and guess.confidence >= 0.95:
+            return None
     cands = []
     for spec in library_wheels().values():
         if not isinstance(spec, PatternSpec):
@@ -273,8 +289,7 @@ def library_match(edges: Edges, sensor: str) -> tuple[int, str, Any] | None:
         revs = max(len(track.reference_times), 1)
         if track.sync_losses > 1 or track.extra + track.missing > HINT_ODD_PER_REV * revs:
             continue
-        guess = identify(times[d])
-        if guess is not None and guess.confidence >= sc.confidence:
+        if _odd_per_rev(track) >= nm_odd:
             return None  # an N-M wheel explains the teeth at least as well
         if sensor == "hall":
             d = _hall_pattern_direction(edges, sc.spec)
