@@ -158,8 +158,8 @@ def _edges_per_cycle(values: np.ndarray, cycle_index: np.ndarray, full: np.ndarr
     cyc = cycle_index[np.isin(cycle_index, full)]
     if len(full) == 0:
         return None
-    counts = np.array([np.count_nonzero(cyc == c) for c in full])
-    counts = counts[counts > 0]
+    # events per whole cycle (cycles without any event do not count)
+    _cycles_seen, counts = np.unique(cyc, return_counts=True)
     if len(counts) == 0:
         return None
     vals, cnt = np.unique(counts, return_counts=True)
