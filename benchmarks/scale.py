@@ -20,12 +20,16 @@ What it does:
    reports both times, their ratio and the decode's peak resident memory (``ru_maxrss``);
 3. for the CSV: times toothcomb's blockwise parse of the whole file against ``numpy.loadtxt``
    on its first ``--loadtxt-rows`` rows (rows per second), and the decode's peak memory;
-4. removes the scratch folder unless ``--keep DIR`` names one (files found there are reused).
+4. with ``--profile``: decodes each WAV once more under cProfile and prints the share of each
+   stage (levels, first seconds, reading, front ends, tracker and cam locator, result) with
+   what it comes to in seconds and in multiples of the read;
+5. removes the scratch folder unless ``--keep DIR`` names one (files found there are reused).
 
     python benchmarks/scale.py                        # 1, 10, 60 min at 192 kHz: 9 GB, ~30 min
     python benchmarks/scale.py --minutes 1 10         # shorter
     python benchmarks/scale.py --keep /tmp/tc-scale   # keep (and reuse) the captures
     python benchmarks/scale.py --only wav             # skip the CSV and HDF5 parts
+    python benchmarks/scale.py --minutes 10 --only wav --profile   # where the time goes
 
 The simulated sound card runs without oversampling (``oversample=1``) so that an hour of capture
 is made in minutes; the decoder sees the same kind of signal either way. Timing is wall-clock on
@@ -88,6 +92,62 @@ print(json.dumps({
     "cam_edges": [[e.direction, round(e.angle.mean, 3), e.angle.n] for e in r.cams[0].edges],
 }))
 """
+
+#: one decode under cProfile: where its time goes, by stage: the cumulative time of the
+#: functions (name, a piece of their file's path) that decode_capture calls for each stage,
+#: directly or from a comprehension of its own; a name missing in this version counts 0
+PROFILE = r"""
+import cProfile, json, pstats, sys, time
+from toothcomb.decoders.options import DecodeOptions
+from toothcomb.decoders.pipeline import decode_capture
+path, bs = sys.argv[1], int(sys.argv[2])
+stages = json.loads(sys.argv[3])
+decode_capture(path, DecodeOptions(block_size=bs))  # warm: imports, page cache
+prof = cProfile.Profile()
+t0 = time.perf_counter()
+prof.enable()
+decode_capture(path, DecodeOptions(block_size=bs))
+prof.disable()
+wall = time.perf_counter() - t0
+stats = pstats.Stats(prof).stats
+total = next(v[3] for k, v in stats.items() if k[2] == "decode_capture")
+def from_decode(caller):
+    return caller[2] == "decode_capture" or (
+        caller[0].endswith("pipeline.py") and caller[2] in ("<dictcomp>", "<listcomp>"))
+out = {}
+for label, funcs in stages.items():
+    t = 0.0
+    for k, v in stats.items():
+        if any(k[2] == name and where in k[0] for name, where in funcs):
+            t += sum(c[3] for caller, c in v[4].items() if from_decode(caller))
+    out[label] = t
+print(json.dumps({"wall_s": wall, "profiled_s": total, "stages": out}))
+"""
+
+#: the stages of a decode, as (function name, piece of its file's path) that decode_capture
+#: calls for them
+STAGES = {
+    "levels": [("estimate_levels", "levels.py")],
+    "probe, channel identification, front-end calibration": [
+        ("read_probe", "pipeline.py"), ("look_at_channel", "identify.py"),
+        ("_clip_marks", "pipeline.py"),
+    ],
+    "first seconds: edges, crank channel, wheel": [
+        ("_stream_prefix", "pipeline.py"), ("plan_crank", "pipeline.py"),
+        ("_pick_crank", "pipeline.py"), ("_tooth_offsets", "pipeline.py"),
+        ("_clipped_teeth", "pipeline.py"), ("vr_centre_direction", "cams.py"),
+    ],
+    "decode pass: reading the samples": [("code_blocks", "readers"), ("blocks", "readers")],
+    "decode pass: front ends (samples -> edges)": [
+        ("process_codes", "frontends"), ("process", "frontends"), ("finish", "frontends"),
+        ("process", "pipeline.py"), ("finish", "pipeline.py"),
+    ],
+    "decode pass: tooth tracker, cam locator, jitter, speed": [
+        ("hand_over", "pipeline.py"), ("take", "pipeline.py"), ("feed", "wheels"),
+        ("finish", "wheels"), ("finish", "timeline.py"), ("flush", "jitter.py"),
+    ],
+    "result: cam edges, phaser, findings": [("_result", "pipeline.py")],
+}
 
 #: decode only, for peak memory of CSV and HDF5 captures
 DECODE_ONLY = r"""
@@ -176,6 +236,25 @@ def run(code: str, *args: str) -> dict:
     return json.loads(out.stdout)
 
 
+def _print_profile(path: Path, block_size: int, measured: dict) -> None:
+    """Where one decode of ``path`` spends its time, by stage. cProfile slows the decode down,
+    so each stage is given as its share of the profiled decode and, by that share, in seconds
+    of the unprofiled decode just measured and in multiples of the read."""
+    p = run(PROFILE, str(path), str(block_size), json.dumps(STAGES))
+    total = p["profiled_s"]
+    decode_s, read_s = measured["decode_s"], measured["read_s"]
+    print(f"      where the decode's time goes (cProfile: {total:.2f} s profiled; shares of the "
+          f"{decode_s:.2f} s decode):")
+    rest = total
+    for label, t in [*p["stages"].items(), ("other: the loop itself, checks", None)]:
+        t = rest if t is None else t
+        rest -= t
+        share = t / total
+        print(f"      {100 * share:5.1f} %  {share * decode_s:6.2f} s  "
+              f"{share * decode_s / read_s:5.2f} x read  {label}")
+    print(flush=True)
+
+
 def csv_seconds(folder: Path, megabytes: float, rate: float) -> float:
     """Seconds of scope capture that make a CSV of about ``megabytes``."""
     probe = folder / "size-probe.csv"
@@ -202,6 +281,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--only", nargs="+", default=["wav", "csv", "hdf5"],
                     choices=["wav", "csv", "hdf5"], help="parts to run")
     ap.add_argument("--keep", metavar="DIR", help="keep (and reuse) the captures in DIR")
+    ap.add_argument("--profile", action="store_true",
+                    help="also profile one decode of each WAV and print where its time goes")
     a = ap.parse_args(argv)
 
     folder = Path(a.keep) if a.keep else Path(tempfile.mkdtemp(prefix="toothcomb-scale-"))
@@ -229,6 +310,8 @@ def main(argv: list[str] | None = None) -> int:
                           f"{r['decode_s'] / r['read_s']:6.2f} {rate:8.1f} {r['peak_mib']:9.0f}  "
                           f"{r['rpm']:.0f} rpm, {r['references']} refs, "
                           f"{r['sync_losses']} losses; cam {edges}", flush=True)
+                    if a.profile:
+                        _print_profile(path, a.block_size, r)
         longest = max(a.minutes)
         if "hdf5" in a.only:
             path = folder / f"idle-vr-{longest:g}min.h5"

@@ -7,6 +7,8 @@ import math
 import numpy as np
 import pytest
 from scipy import signal
+from scipy.ndimage import median_filter
+from toothcomb.decoders.frontends import hall as hall_mod
 from toothcomb.decoders.frontends.base import cubic_crossing, despike, linear_crossing
 from toothcomb.decoders.frontends.hall import HallFrontEnd
 from toothcomb.decoders.frontends.vr import VrFrontEnd
@@ -22,11 +24,17 @@ def levels_of(x: np.ndarray) -> ChannelLevels:
     )
 
 
-def run(cls, x: np.ndarray, fs: float, block: int | None = None, **opts) -> Edges:
+def run(
+    cls, x: np.ndarray, fs: float, block: int | None = None, gather: int | None = None, **opts
+) -> Edges:
+    """Calibrate on ``x`` and feed it in blocks; ``gather=0`` searches every block as it comes
+    (the front end's own gathering of short blocks is off)."""
     lv = levels_of(x)
     cal = cls.calibrate(x, fs, lv)
     cal.update(opts)
     fe = cls(fs, lv, **cal)
+    if gather is not None:
+        fe.gather = gather
     block = block or len(x)
     parts = [fe.process(x[i : i + block], i) for i in range(0, len(x), block)]
     parts.append(fe.finish())
@@ -80,11 +88,12 @@ def test_hall_edges_are_sub_sample(hall_case):
     assert np.max(np.abs(err)) < 0.2 * ts
 
 
+@pytest.mark.parametrize("gather", [0, None])
 @pytest.mark.parametrize("block", [1000, 4097, 65536])
-def test_hall_edges_do_not_depend_on_block_size(hall_case, block):
+def test_hall_edges_do_not_depend_on_block_size(hall_case, block, gather):
     fs, _truth, _tau, x = hall_case
     whole = run(HallFrontEnd, x, fs)
-    cut = run(HallFrontEnd, x, fs, block=block)
+    cut = run(HallFrontEnd, x, fs, block=block, gather=gather)
     np.testing.assert_array_equal(whole.times, cut.times)
     np.testing.assert_array_equal(whole.direction, cut.direction)
 
@@ -182,7 +191,8 @@ def test_vr_follows_amplitude_growing_with_speed():
     assert np.max(np.abs(falling - centres)) < 0.1 / fs
 
 
-def test_vr_edges_do_not_depend_on_block_size():
+@pytest.mark.parametrize("gather", [0, None])
+def test_vr_edges_do_not_depend_on_block_size(gather):
     rng = np.random.default_rng(5)
     fs = 48000.0
     centres = 0.002 + np.cumsum(rng.uniform(0.8e-3, 1.2e-3, 300))
@@ -190,8 +200,9 @@ def test_vr_edges_do_not_depend_on_block_size():
     x = vr_signal(centres, fs, n, 0.15e-3, 0.5) + rng.normal(0, 0.003, n)
     whole = run(VrFrontEnd, x, fs)
     for block in (777, 1000, 16384):
-        cut = run(VrFrontEnd, x, fs, block=block)
+        cut = run(VrFrontEnd, x, fs, block=block, gather=gather)
         np.testing.assert_array_equal(whole.times, cut.times)
+        np.testing.assert_array_equal(whole.strength, cut.strength)
 
 
 def test_despike_does_not_move_edges(hall_case):
@@ -253,3 +264,219 @@ def test_flat_input_gives_no_edges():
     assert len(Edges.concat([fe.process(x, 0), fe.finish()])) == 0
     fe2 = VrFrontEnd(fs, lv, floor=0.01)
     assert len(Edges.concat([fe2.process(x, 0), fe2.finish()])) == 0
+
+
+# --------------------------------------------------------------------------- fast paths
+
+
+def step_runs_by_hand(x: np.ndarray, W: int, thr: float) -> list[tuple[int, int, int]]:
+    """The definition, sample by sample in plain Python: runs of ``|x[i] - x[i - W]| > thr``
+    of one direction, as (first index, last index, direction)."""
+    runs: list[list[int]] = []
+    values = x.tolist()  # Python ints and floats: no wrap-around, IEEE subtraction
+    for i in range(W, len(values)):
+        d = values[i] - values[i - W]
+        if abs(d) > thr:
+            sign = 1 if d > 0 else -1
+            if runs and runs[-1][1] == i - 1 and runs[-1][2] == sign:
+                runs[-1][1] = i
+            else:
+                runs.append([i, i, sign])
+    return [tuple(r) for r in runs]  # type: ignore[misc]
+
+
+def _steps_list(x: np.ndarray, W: int, thr: float) -> list[tuple[int, int, int]]:
+    s, e, sign = hall_mod._steps(x, W, thr)
+    return list(zip(s.tolist(), e.tolist(), sign.tolist(), strict=True))
+
+
+def _cam_like(n: int, flanks: list[int], lo: float, hi: float, rng) -> np.ndarray:
+    """A two-level signal switching at ``flanks`` (sample indices), with a little noise."""
+    level = np.full(n, lo)
+    for k, f in enumerate(flanks):
+        level[f:] = hi if k % 2 == 0 else lo
+    return level + rng.normal(0, 0.01 * (hi - lo), n)
+
+
+def test_hall_step_search_skips_only_stretches_without_steps(monkeypatch):
+    """The search looks only at stretches whose range (with the stretch before) exceeds the
+    threshold; it must find exactly the runs the sample-by-sample definition finds: flanks far
+    apart (the stretches between are skipped), on and around stretch boundaries, in the last,
+    shorter stretch, dense flanks (every stretch looked at), and none at all."""
+    dense_calls = []
+    plain_dense = hall_mod._steps_dense
+    monkeypatch.setattr(
+        hall_mod, "_steps_dense", lambda *a: dense_calls.append(1) or plain_dense(*a)
+    )
+    rng = np.random.default_rng(12)
+    C, W = hall_mod.STRETCH, 5
+    n = 40 * C + 777
+    cases = {
+        "sparse": [3 * C + 100, 9 * C + 50, 20 * C + 1],
+        "on boundaries": [4 * C - 2, 6 * C, 8 * C + W - 1, 10 * C - W, 12 * C + 1],
+        "in the last stretch": [2 * C, 40 * C + 300],
+        "first samples": [1, W + 1, 2 * W + 3],
+        "dense": list(range(200, n - 100, 150)),
+        "none": [],
+    }
+    for name, flanks in cases.items():
+        x = _cam_like(n, flanks, 0.0, 1.0, rng)
+        want = step_runs_by_hand(x, W, 0.5)
+        assert len(want) >= len(flanks) - (1 if name == "first samples" else 0), name
+        dense_calls.clear()
+        assert _steps_list(x, W, 0.5) == want, name
+        assert bool(dense_calls) == (name == "dense"), name  # the others skipped stretches
+        codes = np.round(x * 20000).astype(np.int16)
+        assert _steps_list(codes, W, 10000) == step_runs_by_hand(codes, W, 10000), name
+
+
+def test_hall_step_search_on_codes_never_wraps_around():
+    """Integer codes are subtracted in a type wide enough for their range: a 16-bit swing of
+    more than half the scale needs 32 bits, a 32-bit one (24- and 32-bit PCM) 64 bits."""
+    rng = np.random.default_rng(13)
+    W = 4
+    for dtype, top in ((np.int16, 2**15 - 1), (np.int32, 2**31 - 1)):
+        flanks = [1000, 5000, 5003, 9000, 30000]
+        x = _cam_like(40000, flanks, -0.9, 0.9, rng)
+        codes = np.round(np.clip(x, -1, 1) * top).astype(dtype)
+        assert int(codes.max()) - int(codes.min()) > top  # the difference overflows the type
+        thr = int(0.5 * top)
+        want = step_runs_by_hand(codes, W, thr)
+        assert len(want) >= 4
+        assert _steps_list(codes, W, thr) == want
+
+
+def test_hall_step_search_with_nan_inf_and_odd_thresholds():
+    rng = np.random.default_rng(14)
+    W = 3
+    x = _cam_like(9000, [2000, 2600, 7000], 0.0, 1.0, rng)
+    x[2100] = np.nan  # in a stretch with a flank
+    x[5000:5100] = np.nan  # a stretch with nothing else
+    x[8000] = np.inf
+    for thr in (0.5, 0.0, -1.0, 3.0):
+        assert _steps_list(x, W, thr) == step_runs_by_hand(x, W, thr), thr
+    assert _steps_list(x[:W], W, 0.5) == []
+
+
+def test_hall_int32_codes_of_a_wide_swing_give_the_float_edges():
+    """A 24- or 32-bit sound card recording a Hall output near full scale: the codes path finds
+    the edges the float path finds (a 32-bit difference would wrap around and lose them)."""
+    fs = 100_000.0
+    t = np.arange(200_000) / fs
+    x = np.where(np.sin(2 * np.pi * 50 * t) > 0, 0.8, -0.8)
+    codes = np.round(x * 2**31).clip(-(2**31), 2**31 - 1).astype(np.int32)
+    values = codes * 2.0**-31
+    lv = levels_of(values)
+    a = HallFrontEnd(fs, lv)
+    floats = Edges.concat([a.process(values, 0), a.finish()])
+    b = HallFrontEnd(fs, lv)
+    by_codes = Edges.concat([b.process_codes(codes, 0, 2.0**-31), b.finish()])
+    # source: 50 Hz square wave over 2 s: two flanks per period, less the one at t = 0
+    assert len(floats) == 199
+    np.testing.assert_array_equal(by_codes.times, floats.times)
+    np.testing.assert_array_equal(by_codes.direction, floats.direction)
+
+
+@pytest.mark.parametrize("size", [3, 5])
+def test_despike_is_scipys_running_median(size):
+    """The running median is computed by a network of minima and maxima; it must give what
+    scipy.ndimage.median_filter gives, ties and integer codes included."""
+    rng = np.random.default_rng(15)
+    h = size // 2
+    for kind in ("ints", "floats", "ties"):
+        for n in (size, size + 1, 50, 1001):
+            x = {
+                "ints": rng.integers(-3, 4, n).astype(np.int16),
+                "floats": rng.normal(size=n),
+                "ties": np.round(rng.normal(size=n), 1),
+            }[kind]
+            # source: scipy documentation, scipy.ndimage.median_filter
+            want = median_filter(x, size=size, mode="nearest")
+            want[:h], want[n - h :] = x[:h], x[n - h :]
+            got = despike(x, size)
+            assert got.dtype == x.dtype
+            np.testing.assert_array_equal(got, want)
+    x = rng.normal(size=100)
+    x[40] = np.nan  # no order: scipy's filter is used as it is
+    want = median_filter(x, size=size, mode="nearest")
+    want[:h], want[100 - h :] = x[:h], x[100 - h :]
+    np.testing.assert_array_equal(despike(x, size), want)
+
+
+def test_has_spikes_looks_at_every_piece(monkeypatch):
+    """Spikes are looked for piece by piece (the first found ends the search): a spike in any
+    piece, at a piece's edge or in none must be found as the whole running median finds it."""
+    from toothcomb.decoders.frontends import base as base_mod
+
+    monkeypatch.setattr(base_mod, "SPIKE_PIECE", 97)
+    rng = np.random.default_rng(18)
+
+    def by_definition(x: np.ndarray, height: float) -> bool:
+        # source: scipy documentation, scipy.ndimage.median_filter (running median of five)
+        m = median_filter(x, size=5, mode="nearest")
+        m[:2], m[len(x) - 2 :] = x[:2], x[len(x) - 2 :]
+        return bool(np.any(np.abs(x - m) > height))
+
+    found = 0
+    for trial in range(300):
+        n = int(rng.integers(5, 1000))
+        x = 0.1 * rng.normal(size=n)
+        if trial % 2:
+            x[rng.integers(0, n)] += 2.0  # one spike, anywhere (at a piece's edge, too)
+        if trial % 7 == 0:
+            x[rng.integers(0, n)] = np.nan
+        want = by_definition(x, 1.0)
+        found += want
+        assert base_mod.has_spikes(x, 1.0) == want, trial
+    assert 100 < found < 200  # most spikes stand out; a few fall on the first or last samples
+
+
+def test_hall_integer_comparisons_are_the_float_ones():
+    """On codes, the level tests compare integers with integer thresholds; they must say what
+    the comparisons of the same values as floats say, at integer and half-integer levels."""
+    rng = np.random.default_rng(16)
+    x = rng.integers(-50, 50, size=(400, 17)).astype(np.int16)
+    level = np.round(rng.uniform(-40, 40, 400) * 2) / 2  # whole and half codes
+    sign = np.where(rng.random(400) < 0.5, 1, -1)
+    xf = x.astype(float)
+    # the definition: (x - level) * sign > 0, counted
+    want = np.count_nonzero((xf - level[:, None]) * sign[:, None] > 0, axis=1)
+    np.testing.assert_array_equal(hall_mod._beyond(x, level, sign), want)
+    np.testing.assert_array_equal(hall_mod._beyond(xf, level, sign), want)
+    inside = rng.random((400, 17)) < 0.9
+    k_int, has_int = hall_mod._last_crossing(x, inside, level, sign, 3)
+    k_f, has_f = hall_mod._last_crossing(xf, inside, level, sign, 3)
+    np.testing.assert_array_equal(k_int, k_f)
+    np.testing.assert_array_equal(has_int, has_f)
+    frac = hall_mod._linear_at(x, k_int, level)
+    np.testing.assert_array_equal(frac, hall_mod._linear_at(xf, k_f, level))
+    starts = rng.integers(0, 390, 50)
+    rows = hall_mod._rows(x.ravel(), starts, 25, clip=True)
+    at = np.minimum(starts[:, None] + np.arange(25), x.size - 1)
+    np.testing.assert_array_equal(rows, x.ravel()[at])
+    np.testing.assert_array_equal(hall_mod._rows(x.ravel(), starts, 9), x.ravel()[at[:, :9]])
+
+
+def test_hall_persistence_check_counts_when_a_stretch_is_not_clean():
+    """A flank's new level must hold (80 % of the samples beyond the midpoint) over the stretch
+    after it, the old one over the stretch before; clean stretches are passed on their lowest
+    and highest sample, the others counted. Both give what counting every one gives."""
+    rng = np.random.default_rng(17)
+    P = 20
+    fe = HallFrontEnd(1e5, levels_of(np.r_[0.0, 1.0]), persist=P)
+    buf = (rng.random(5000) < 0.93).astype(np.int16) * 100  # mostly high, some low samples
+    after = rng.integers(P + 10, 4900, 300)
+    before = after - P - 10
+    mid = rng.uniform(20, 80, 300)
+    sign = np.where(rng.random(300) < 0.5, 1, -1)
+    buf[before[sign > 0, None] + np.arange(P)] = 0  # rising flanks come from low
+    buf[after[sign < 0, None] + np.arange(P)] = 0  # falling ones go to low
+    rows_a = buf[after[:, None] + np.arange(P)].astype(float)
+    rows_b = buf[before[:, None] + np.arange(P)].astype(float)
+    n_a = np.count_nonzero((rows_a - mid[:, None]) * sign[:, None] > 0, axis=1)
+    n_b = np.count_nonzero((rows_b - mid[:, None]) * -sign[:, None] > 0, axis=1)
+    want = (n_a / P >= 0.8) & (n_b / P >= 0.8)
+    got = fe._held(buf, after, before, mid, sign)
+    assert 0 < np.count_nonzero(want) < len(want)  # some hold, some do not
+    assert np.count_nonzero(n_a < P) > 10  # and many are not clean, yet hold or not as counted
+    np.testing.assert_array_equal(got, want)

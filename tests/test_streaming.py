@@ -6,6 +6,7 @@ progress bar that shows for long decodes only."""
 from __future__ import annotations
 
 import io
+import itertools
 import json
 import math
 from collections.abc import Iterator
@@ -16,10 +17,11 @@ import pytest
 import soundfile as sf
 from conftest import cam_errors, make_capture
 from rich.console import Console
+from scipy import signal
 from toothcomb.cli.progress import SHOW_AFTER_S, StageProgress, progress_for
 from toothcomb.decoders import levels as levels_mod
 from toothcomb.decoders import pipeline
-from toothcomb.decoders.errors import SignalError
+from toothcomb.decoders.errors import CaptureError, SignalError
 from toothcomb.decoders.frontends import hall as hall_mod
 from toothcomb.decoders.frontends import vr as vr_mod
 from toothcomb.decoders.levels import (
@@ -286,11 +288,15 @@ def test_hall_ordered_edges_fast_and_slow_agree():
     assert np.array_equal(slow[0], pos) and np.array_equal(slow[1], sign)
 
 
+@pytest.mark.parametrize("gather", [0, None])
 @pytest.mark.parametrize("kind", ["hall", "vr"])
 @pytest.mark.parametrize("despike", [1, 5])
-def test_front_ends_find_the_same_edges_on_codes_as_on_floats(kind: str, despike: int):
+def test_front_ends_find_the_same_edges_on_codes_as_on_floats(
+    kind: str, despike: int, gather: int | None
+):
     """Integer codes with the code's value (a power of two) give the edges the float samples
-    give, to the last bit: every threshold is scaled instead of every sample."""
+    give, to the last bit: every threshold is scaled instead of every sample. ``gather=0``
+    searches every block as it comes (block boundaries everywhere)."""
     x = _vr_signal(200_000)
     if kind == "hall":
         x = np.where(np.sin(np.cumsum(np.full(len(x), 0.013))) > 0, 0.8, -0.6) + 0.01 * x
@@ -301,14 +307,199 @@ def test_front_ends_find_the_same_edges_on_codes_as_on_floats(kind: str, despike
                                                      0.55), 0.003, 0.0)
     cls = hall_mod.HallFrontEnd if kind == "hall" else vr_mod.VrFrontEnd
     opts = {"despike": despike} | ({"persist": 40} if kind == "hall" else {})
-    a = _edges_of(cls(100_000.0, lv, **opts), values, 7001)
+    fa = cls(100_000.0, lv, **opts)
     fe = cls(100_000.0, lv, **opts)
+    if gather is not None:
+        fa.gather = fe.gather = gather
+    a = _edges_of(fa, values, 7001)
     parts = [fe.process_codes(codes[i : i + 7001], i, 2.0**-15) for i in range(0, len(x), 7001)]
     b = Edges.concat([*parts, fe.finish()])
     assert len(a) > 100
     assert np.array_equal(a.times, b.times)
     assert np.array_equal(a.direction, b.direction)
     assert np.array_equal(a.strength, b.strength)
+
+
+def _hall_signal(n: int) -> np.ndarray:
+    """A Hall channel with flanks of a crank (close together) in its first half and of a cam
+    (far apart: most stretches hold no flank) in its second, noise and spikes."""
+    x = np.where(np.sin(np.cumsum(np.full(n, 0.013))) > 0, 0.8, -0.6)
+    slow = np.where(np.sin(np.arange(n) * 2 * np.pi / 70_000) > 0, 0.7, 0.0)
+    x = x * (np.arange(n) < n // 2) + slow * (np.arange(n) >= n // 2) + 0.01 * RNG.normal(size=n)
+    x[RNG.integers(0, n, 40)] += 0.9
+    return x
+
+
+@pytest.mark.parametrize("kind", ["hall", "vr"])
+@pytest.mark.parametrize("codes", [False, True])
+def test_gathered_blocks_give_the_edges_of_blocks_searched_as_they_come(kind: str, codes: bool):
+    """A front end gathers short blocks and searches them together (carrying its own tail into
+    the next gathering); the edges, their strengths and the rejected flanks must be those of
+    searching every block as it comes, for blocks of any and of changing sizes, and the
+    gathered samples never take more than :data:`GATHER_BYTES`."""
+    from toothcomb.decoders.frontends.base import GATHER_BYTES
+
+    n = 600_000
+    x = _vr_signal(n) if kind == "vr" else _hall_signal(n)
+    c = np.round(np.clip(x / 2.0, -1, 1 - 2**-15) * 2**15).astype(np.int16)
+    v = c * 2.0**-15
+    lv = ChannelLevels("ch0", n, -1, 1, 0, 0.4, (-0.5, -0.4, -0.35, -0.3, 0, 0.4, 0.45, 0.5, 0.55),
+                       0.003, 0.0)
+    cls = hall_mod.HallFrontEnd if kind == "hall" else vr_mod.VrFrontEnd
+    opts = {"persist": 40} if kind == "hall" else {}
+    cuts = np.cumsum(RNG.integers(1, 30_000, 200))
+    sizes = {"7001": np.arange(7001, n, 7001), "varied": cuts[cuts < n], "one": np.array([], int)}
+    results = []
+    for gather in (None, 0):
+        for cut in sizes.values():
+            fe = cls(100_000.0, lv, **opts)
+            if gather is not None:
+                fe.gather = gather
+            bounds = [0, *cut.tolist(), n]
+            parts = [
+                fe.process_codes(c[a:b], a, 2.0**-15) if codes else fe.process(v[a:b], a)
+                for a, b in itertools.pairwise(bounds)
+            ]
+            if gather is None and fe._gbuf is not None:
+                assert fe._gbuf.nbytes <= GATHER_BYTES + 8 * len(fe._carry())
+            e = Edges.concat([*parts, fe.finish()])
+            results.append((e, dict(getattr(fe, "rejected", {}))))
+    first, rejected = results[0]
+    assert len(first) > 1000
+    for e, rej in results[1:]:
+        assert np.array_equal(e.times, first.times)
+        assert np.array_equal(e.direction, first.direction)
+        assert np.array_equal(e.strength, first.strength)
+        assert rej == rejected
+
+
+def test_vr_a_wrong_guess_of_quiet_half_waves_changes_nothing(monkeypatch):
+    """Runs of half-waves are closed at once for a guess of which ones are insignificant; the
+    guess is checked against the running averages, so even a random one must give what
+    closing each half-wave in turn gives."""
+    x = _vr_signal()
+    lv = ChannelLevels("ch0", len(x), -2, 2, 0, 0.7, (-1.2, -1, -0.9, -0.5, 0, 0.5, 0.9, 1, 1.2),
+                       0.003, 0.0)
+    mixed: list[int] = []
+    plain_mixed = vr_mod.VrFrontEnd._close_mixed
+
+    def spy(self, start, end, sign, peak, quiet, *rest):
+        mixed.append(int(np.count_nonzero(quiet)))
+        return plain_mixed(self, start, end, sign, peak, quiet, *rest)
+
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_mixed", spy)
+    fast = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    assert sum(mixed) > 5  # runs went on through insignificant half-waves (the gaps)
+    rng = np.random.default_rng(7)
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_quiet_guess",
+                        lambda self, peak: rng.random(len(peak)) < 0.02)
+    guessed = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_run", lambda self, *a: 0)
+    slow = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    for e in (fast, guessed):
+        assert np.array_equal(e.times, slow.times)
+        assert np.array_equal(e.direction, slow.direction)
+        assert np.array_equal(e.strength, slow.strength)
+
+
+def test_vr_short_recursions_step_by_step_are_lfilters():
+    """A short run of a running average is computed step by step in Python; it must be what
+    scipy.signal.lfilter gives (the recursion y = b x + k y), to the last bit."""
+    if not vr_mod._PLAIN:
+        pytest.skip("this scipy fuses multiply and add: lfilter is used for every run")
+    rng = np.random.default_rng(8)
+    for rec in (vr_mod._ENVELOPE, vr_mod._SLOW, vr_mod._WIDTH):
+        for n in (0, 1, 2, 17, vr_mod.RUN_BY_STEPS):
+            x = rng.random(n) * 10.0 ** rng.integers(-6, 3, n)
+            b, k = rec
+            # source: scipy documentation, scipy.signal.lfilter (direct form II transposed)
+            want = signal.lfilter([b], [1.0, -k], x, zi=[k * 0.37])[0]
+            assert np.array_equal(vr_mod._run(rec, 0.37, x), want)
+
+
+def _extensible_wav(path: Path, codes: np.ndarray, rate: int) -> None:
+    """A 16-bit PCM WAV with a WAVE_FORMAT_EXTENSIBLE header, written by hand.
+
+    source: Microsoft, "WAVEFORMATEXTENSIBLE structure" (mmreg.h): format tag 0xFFFE,
+    cbSize 22, then valid bits, channel mask and the sub-format GUID, whose first two bytes
+    are the format tag of plain PCM (1)."""
+    import struct
+
+    ch = codes.shape[1]
+    guid = struct.pack("<I", 1) + struct.pack("<HH", 0, 0x10) + bytes(
+        [0x80, 0, 0, 0xAA, 0, 0x38, 0x9B, 0x71]
+    )
+    fmt = struct.pack("<HHIIHHHHI", 0xFFFE, ch, rate, rate * 2 * ch, 2 * ch, 16, 22, 16,
+                      (1 << ch) - 1) + guid
+    data = codes.astype("<i2").tobytes()
+    body = b"WAVE" + b"fmt " + struct.pack("<I", len(fmt)) + fmt + b"data" + struct.pack(
+        "<I", len(data)) + data
+    path.write_bytes(b"RIFF" + struct.pack("<I", len(body)) + body)
+
+
+@pytest.mark.parametrize("layout", ["mono", "stereo", "three", "extensible", "streaming"])
+def test_a_plain_16_bit_wav_is_read_as_its_stored_codes(tmp_path: Path, layout: str):
+    """A 16-bit PCM WAV is read straight from its data chunk; the codes and the values must be
+    what libsndfile reads (python-soundfile, the reference), in blocks of any size."""
+    import struct
+
+    ch = {"mono": 1, "three": 3}.get(layout, 2)
+    x = np.clip(RNG.normal(size=(30_011, ch)) * 0.4, -1.0, 1.0)
+    path = tmp_path / "t.wav"
+    codes = np.round(x * 32767).astype(np.int16)
+    if layout == "extensible":
+        _extensible_wav(path, codes, 48000)
+    else:
+        sf.write(path, codes, 48000, subtype="PCM_16")
+    if layout == "streaming":  # a recorder that never wrote the length: size 0xFFFFFFFF
+        raw = bytearray(path.read_bytes())
+        at = raw.index(b"data")
+        raw[at + 4 : at + 8] = struct.pack("<I", 0xFFFFFFFF)
+        path.write_bytes(bytes(raw))
+    # source: python-soundfile / libsndfile, read(dtype="int16") and read(dtype="float64")
+    want_codes = sf.read(path, dtype="int16", always_2d=True)[0]
+    want = sf.read(path, dtype="float64", always_2d=True)[0]
+    assert np.array_equal(want_codes, codes)
+    with open_capture(str(path)) as src:
+        assert src._raw is not None  # the data chunk is read directly
+        assert src._raw.format_tag == (0xFFFE if layout == "extensible" else 1)
+        got_codes = np.concatenate([b.data for b in src.code_blocks(4099)])
+        got = np.concatenate([b.data for b in src.blocks(65536)])
+        assert all(b.data[:, 0].flags.c_contiguous for b in src.code_blocks(1000))
+    assert got_codes.dtype == np.int16 and np.array_equal(got_codes, want_codes)
+    assert np.array_equal(got, want)
+
+
+def test_a_truncated_streaming_wav_is_refused_where_its_data_ends(tmp_path: Path):
+    import struct
+
+    path = tmp_path / "t.wav"
+    sf.write(path, np.zeros((5000, 2)), 48000, subtype="PCM_16")
+    raw = bytearray(path.read_bytes())
+    at = raw.index(b"data")
+    raw[at + 4 : at + 8] = struct.pack("<I", 0xFFFFFFFF)
+    path.write_bytes(bytes(raw))
+    with open_capture(str(path)) as src:
+        assert src._raw is not None
+        path.write_bytes(bytes(raw[: len(raw) - 4 * 3000]))  # cut while open
+        with pytest.raises(CaptureError, match=r"audio data ends at frame 2000 although the "
+                           r"file announces 5000; the file looks truncated"):
+            for _ in src.code_blocks(1000):
+                pass
+
+
+def test_decode_is_the_same_with_every_block_searched_as_it_comes(tmp_path, monkeypatch):
+    """The front ends gather short blocks; with that off (every block searched on its own, as
+    the blocks come) a decode gives the same answer, to the last bit."""
+    from toothcomb.decoders.frontends.base import SampleFeed
+
+    for fmt in ("wav", "h5"):
+        path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=2.0), fmt)
+        gathered = _decode_json(path, block_size=4096)
+        with monkeypatch.context() as m:
+            m.setattr(SampleFeed, "gather", 0)
+            assert _decode_json(path, block_size=4096) == gathered
+            assert _decode_json(path, block_size=999) == gathered
 
 
 def test_pcm_decodes_the_same_through_codes_and_floats(tmp_path, monkeypatch):

@@ -88,6 +88,8 @@ class HallFrontEnd(SampleFeed):
         self._reach = np.unique(
             np.linspace(1, self.persist, min(self.persist, 64)).round().astype(int)
         )[None, :]
+        #: the reach is every sample 1..persist (then the samples are taken as rows)
+        self._reach_run = bool(np.array_equal(self._reach[0], np.arange(1, self.persist + 1)))
         #: sample offsets of the level windows before and after a flank
         self._plateau_offsets = np.arange(self.plateau)[None, :]
         #: flanks waiting to be timed, per block: first sample of the run, run length - 1,
@@ -159,7 +161,12 @@ class HallFrontEnd(SampleFeed):
                 opts["despike"] = 5 if shortest >= 10 else 3 if shortest >= 5 else 1
         return opts
 
-    def _process(self, samples: np.ndarray, start: int, unit: float) -> Edges:
+    def _carry(self) -> np.ndarray:
+        return self._buf
+
+    def _process(
+        self, samples: np.ndarray, start: int, unit: float, joined: bool = False
+    ) -> Edges:
         ints = samples.dtype.kind in "iu"
         if self._unit is None:
             self._unit = unit
@@ -172,7 +179,7 @@ class HallFrontEnd(SampleFeed):
             raise ValueError("a front end is fed floats or codes of one scale, not both")
         if len(self._buf) == 0:
             self._buf_start = start
-        buf = np.concatenate((self._buf, samples)) if len(self._buf) else samples
+        buf = np.concatenate((self._buf, samples)) if len(self._buf) and not joined else samples
         out = self._scan(buf, final=False)
         keep = min(len(buf), self._keep)
         self._buf = buf[len(buf) - keep :].copy()
@@ -193,7 +200,7 @@ class HallFrontEnd(SampleFeed):
             first = min(first, int(self._pend[0][0][0]) - self.window)
         return first / self.sample_rate
 
-    def finish(self) -> Edges:
+    def _finish(self) -> Edges:
         out = self._scan(self._buf, final=True)
         self._buf = np.empty(0)
         return out
@@ -215,11 +222,7 @@ class HallFrontEnd(SampleFeed):
     def _find(self, raw: np.ndarray, final: bool, n: int) -> None:
         W, w, half = self.window, self.plateau, self._half
         buf = despike(raw, self.despike)
-        # d[i] belongs to buf index i + W (codes: in 32 bits, so that no step wraps around)
-        d = np.subtract(buf[W:], buf[:-W], dtype=np.int32 if self._ints else None)
-        s, e, sign = _step_runs(d, self._thr_steps)
-        s = s + W
-        e = e + W
+        s, e, sign = _steps(buf, W, self._thr_steps)
         g = self._buf_start
         # a run is complete when the sample after it and the post-flank plateau are here
         P = self.persist
@@ -254,9 +257,12 @@ class HallFrontEnd(SampleFeed):
             mid0 = 0.5 * (lo + hi)
             reach = self._reach
             nr = reach.shape[1]
-            after = _beyond(buf[post_i[:, -1:] + reach], mid0, sign)
-            before = _beyond(buf[pre_i[:, :1] - reach], mid0, -sign)
-            held = (after / nr >= 0.8) & (before / nr >= 0.8)
+            if self._reach_run:
+                held = self._held(buf, post_i[:, -1] + 1, pre_i[:, 0] - nr, mid0, sign)
+            else:
+                after = _beyond(buf[post_i[:, -1:] + reach], mid0, sign)
+                before = _beyond(buf[pre_i[:, :1] - reach], mid0, -sign)
+                held = (after / nr >= 0.8) & (before / nr >= 0.8)
             if not held.all():
                 for d in (1, -1):
                     self.rejected[d] += int(np.count_nonzero(~held & (sign == d)))
@@ -277,10 +283,48 @@ class HallFrontEnd(SampleFeed):
         # longest one's length); the time comes from the samples as recorded (the running median
         # only found the flank and measured the levels), from the cleaned ones where a spike sits
         # on it
-        at = np.minimum((s - W)[:, None] + np.arange(int(np.max(e - s)) + W + 2), n - 1)
-        stretch = [_floats(raw[at])] + ([_floats(buf[at])] if spiky else [])
+        span = int(np.max(e - s)) + W + 2
+        # (integer codes stay codes: _last_crossing and _linear_at compare them exactly)
+        stretch = [_rows(raw, s - W, span, clip=True)]
+        if spiky:
+            stretch.append(_rows(buf, s - W, span, clip=True))
         self._pend.append((s + g, e - s, sign, step, 0.5 * (lo + hi), stretch))
         self._waiting += len(s)
+
+    def _held(
+        self, buf: np.ndarray, after: np.ndarray, before: np.ndarray, mid: np.ndarray,
+        sign: np.ndarray,
+    ) -> np.ndarray:
+        """Per flank: whether the new level holds over the ``P`` samples from ``after`` on and
+        the old one held over the ``P`` samples from ``before`` on (``P`` = :attr:`persist`;
+        at least 80 % of them beyond the midpoint ``mid`` on their side). Where every sample of
+        both stretches lies on its side (a clean flank: the lowest or highest of each stretch
+        says so, one pass over the stretches) it holds; the others are counted sample by
+        sample."""
+        P = self.persist
+        if max(int(after.max()), int(before.max())) + P >= len(buf):
+            # a stretch reaches the end of the samples: count them all
+            doubt = np.arange(len(mid))
+            held = np.zeros(len(mid), dtype=bool)
+        else:
+            # the stretches on the high side (after a rising flank, before a falling one) must
+            # lie above the midpoint, the others below: the lowest sample of the first kind,
+            # the highest of the second (flanks alternate, so the stretches of each kind come
+            # in order and each reduction runs about once over the samples)
+            up = sign > 0
+            high_side = np.where(up, after, before)
+            low_side = np.where(up, before, after)
+            low = np.minimum.reduceat(buf, np.stack((high_side, high_side + P), axis=1).ravel())
+            high = np.maximum.reduceat(buf, np.stack((low_side, low_side + P), axis=1).ravel())
+            held = (low[::2] > mid) & (high[::2] < mid)
+            doubt = np.flatnonzero(~held)
+            if len(doubt) == 0:
+                return held
+        m, sg = mid[doubt], sign[doubt]
+        n_after = _beyond(_rows(buf, after[doubt], P), m, sg)
+        n_before = _beyond(_rows(buf, before[doubt], P), m, -sg)
+        held[doubt] = (n_after / P >= 0.8) & (n_before / P >= 0.8)
+        return held
 
     def _time_pending(self) -> Edges:
         """Time the flanks found so far: where each crosses the midpoint of its two levels."""
@@ -317,10 +361,139 @@ def _step_runs(d: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray,
     ([1, 4, 5], [2, 4, 5], [1, -1, 1])
     """
     idx = np.flatnonzero(np.abs(d) > threshold)
+    return _runs(idx, d[idx] > 0)
+
+
+#: samples per stretch whose range :func:`_steps` looks at before it looks for steps in them
+STRETCH = 1024
+#: samples :func:`_steps_dense` subtracts and compares at a time (its arrays stay in cache)
+DENSE_PIECE = 1 << 16
+
+
+def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Runs of steps ``|x[i] - x[i - W]| > threshold`` (``_step_runs`` of those differences):
+    the index in ``x`` of the first and last sample of each run, and its direction.
+
+    A stretch of :data:`STRETCH` samples whose range, together with the stretch before it, is
+    within the threshold holds no step (no difference of two samples exceeds their range, and a
+    correctly rounded subtraction keeps that order), so only the other stretches are looked at:
+    a channel with few flanks (a cam) costs little more than two reductions per sample. Integer
+    codes are subtracted in the narrowest type that cannot wrap around.
+
+    >>> x = np.r_[np.zeros(5000), np.ones(5000)]
+    >>> [a.tolist() for a in _steps(x, 2, 0.5)]
+    [[5000], [5001], [1]]
+    >>> [a.tolist() for a in _steps(np.array([0, 0, 9, 9, 9, 0], np.int16), 2, 5)]
+    [[2, 5], [3, 5], [1, -1]]
+    """
+    n = len(x)
+    if n <= W:
+        return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
+    ints = x.dtype.kind in "iu"
+    C = STRETCH
+    m = n // C
+    if threshold < 0 or W > C or m < 4:
+        return _steps_dense(x, W, threshold, _difference_type(x, x.max(), x.min()))
+    # the highest and lowest sample of each stretch (NaN ignored: no step is found on one),
+    # the last, shorter stretch included
+    top, bottom = (np.maximum, np.minimum) if ints else (np.fmax, np.fmin)
+    rows = x[: m * C].reshape(m, C)
+    hi = top.reduce(rows, axis=1)
+    lo = bottom.reduce(rows, axis=1)
+    if m * C < n:
+        hi = np.append(hi, top.reduce(x[m * C :]))
+        lo = np.append(lo, bottom.reduce(x[m * C :]))
+    if ints:
+        hi, lo = hi.astype(np.int64), lo.astype(np.int64)
+    # a step ending in stretch j starts there or in stretch j - 1 (W <= C)
+    hi2 = top(hi, np.concatenate((hi[:1], hi[:-1])))
+    lo2 = bottom(lo, np.concatenate((lo[:1], lo[:-1])))
+    active = (hi2 - lo2) > threshold
+    j = np.flatnonzero(active)
+    if len(j) == 0:
+        return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
+    wide = _difference_type(x, hi.max(), lo.min()) if ints else x.dtype
+    if 4 * len(j) > len(active):
+        return _steps_dense(x, W, threshold, wide)
+    tail = len(j) and j[-1] == m  # the shorter last stretch
+    j = j[:-1] if tail else j
+    idx: list[np.ndarray] = []
+    up: list[np.ndarray] = []
+    if len(j):
+        # each stretch with the W samples before it (the first one: its own first W samples,
+        # which give differences of zero)
+        before = np.where(j[:, None] > 0, rows[j - 1, C - W :], rows[j, :W])
+        piece = np.concatenate((before, rows[j]), axis=1)
+        d = np.subtract(piece[:, W:], piece[:, :-W], dtype=wide).ravel()
+        k = np.flatnonzero(np.abs(d) > threshold)
+        idx.append(j[k // C] * C + k % C)
+        up.append(d[k] > 0)
+    if tail:
+        d = np.subtract(x[m * C :], x[m * C - W : n - W], dtype=wide)
+        k = np.flatnonzero(np.abs(d) > threshold)
+        idx.append(k + m * C)
+        up.append(d[k] > 0)
+    if len(idx) == 1:
+        return _runs(idx[0], up[0])
+    return _runs(np.concatenate(idx), np.concatenate(up))
+
+
+def _difference_type(x: np.ndarray, high: Any, low: Any) -> np.dtype:
+    """The type in which samples of ``x`` between ``low`` and ``high`` are subtracted without
+    wrapping around: their own, or a wider integer."""
+    if x.dtype.kind not in "iu":
+        return x.dtype
+    span = int(high) - int(low)
+    for t in (x.dtype, np.dtype(np.int32), np.dtype(np.int64)):
+        if np.can_cast(x.dtype, t) and span <= np.iinfo(t).max:
+            return t
+    return np.dtype(np.int64)
+
+
+def _steps_dense(
+    x: np.ndarray, W: int, threshold: float, wide: np.dtype
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_steps` on every sample: the runs are where the step's sign over the threshold
+    changes, found in one pass rather than by gathering every index over the threshold."""
+    if threshold < 0:
+        d = np.subtract(x[W:], x[:-W], dtype=wide)
+        idx = np.flatnonzero(np.abs(d) > threshold)
+        return _runs(idx + W, d[idx] > 0)
+    # +1 where a step up exceeds the threshold, -1 where a step down does, else 0; worked out
+    # in pieces that stay in the processor's cache
+    n = len(x) - W
+    c = np.empty(n, dtype=np.int8)
+    flag = c.view(bool)
+    # where c changes (from the sample before; the first sample counts as a change when a run
+    # starts there)
+    changes = []
+    for i in range(0, n, DENSE_PIECE):
+        j = min(i + DENSE_PIECE, n)
+        part = x[i : j + W]
+        if wide != x.dtype:
+            part = part.astype(wide)  # converted once: faster than inside the subtraction
+        d = np.subtract(part[W:], part[:-W])
+        np.greater(d, threshold, out=flag[i:j])
+        c[i:j] -= np.less(d, -threshold).view(np.int8)
+        lo = max(i, 1)
+        changes.append(np.flatnonzero(c[lo:j] != c[lo - 1 : j - 1]) + lo)
+    at = np.concatenate(changes)
+    if c[0]:
+        at = np.concatenate(([0], at))
+    first = at[c[at] != 0]
+    inner = at[at > 0]
+    ends = inner[c[inner - 1] != 0] - 1
+    if c[-1]:
+        ends = np.append(ends, len(c) - 1)
+    return first + W, ends + W, c[first].astype(np.int8)
+
+
+def _runs(idx: np.ndarray, up: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Runs of consecutive indices ``idx`` of the same direction ``up``: first and last index
+    and direction (+1 up, -1 down) of each."""
     if len(idx) == 0:
         empty = np.empty(0, dtype=np.intp)
         return empty, empty, np.empty(0, dtype=np.int8)
-    up = d[idx] > 0
     # a run ends where the next index over the threshold is not the next sample, or steps the
     # other way
     brk = (np.diff(idx) != 1) | (up[1:] != up[:-1])
@@ -364,8 +537,45 @@ def _beyond(x: np.ndarray, level: np.ndarray, sign: np.ndarray) -> np.ndarray:
     >>> _beyond(np.array([[1, 5, 7], [1, 5, 7]]), np.array([4.5, 4.5]), np.array([1, -1]))
     array([2, 1])
     """
+    if x.dtype.kind in "iu" and len(level):
+        # an integer lies above a level exactly when it lies above the level's floor, below it
+        # exactly when it does not lie above its ceiling less one: one comparison per sample,
+        # integers with integers
+        up = sign > 0
+        t = np.where(up, np.floor(level), np.ceil(level) - 1)
+        info = np.iinfo(x.dtype)
+        if info.min <= t.min() and t.max() <= info.max:
+            c = np.count_nonzero(x > t.astype(x.dtype)[:, None], axis=1)
+            return np.where(up, c, x.shape[1] - c)
     m = level[:, None]
     return np.where(sign > 0, np.count_nonzero(x > m, axis=1), np.count_nonzero(x < m, axis=1))
+
+
+def _rows(x: np.ndarray, starts: np.ndarray, length: int, clip: bool = False) -> np.ndarray:
+    """``x[starts[i] : starts[i] + length]`` for every i, as rows of a new array (copied row by
+    row, not gathered sample by sample). With ``clip``, indices past the end of ``x`` take its
+    last sample; otherwise every row must lie inside ``x``.
+
+    >>> _rows(np.arange(10), np.array([0, 7]), 4, clip=True).tolist()
+    [[0, 1, 2, 3], [7, 8, 9, 9]]
+    """
+    n = len(x)
+    if length > n:
+        return x[np.minimum(starts[:, None] + np.arange(length), n - 1)]
+    step = x.strides[0]
+    windows = np.lib.stride_tricks.as_strided(
+        x, shape=(n - length + 1, length), strides=(step, step), writeable=False
+    )
+    if not clip:
+        return windows[starts]
+    inside = starts <= n - length
+    if inside.all():
+        return windows[starts]
+    out = np.empty((len(starts), length), dtype=x.dtype)
+    out[inside] = windows[starts[inside]]
+    late = starts[~inside]
+    out[~inside] = x[np.minimum(late[:, None] + np.arange(length), n - 1)]
+    return out
 
 
 def _floats(x: np.ndarray) -> np.ndarray:
@@ -404,7 +614,16 @@ def _last_crossing(
     >>> k.tolist(), has.tolist()
     ([3], [True])
     """
-    above = (stretch - mid[:, None]) * sign[:, None] >= 0
+    if stretch.dtype.kind in "iu":
+        # integer codes: at or beyond the midpoint is above ceil(mid) - 1 for a rising flank,
+        # not above floor(mid) for a falling one (exactly what the float test gives)
+        up = sign > 0
+        t = np.where(up, np.ceil(mid) - 1, np.floor(mid))
+        info = np.iinfo(stretch.dtype)
+        kind = stretch.dtype if info.min <= t.min() and t.max() <= info.max else np.int64
+        above = (stretch > t.astype(kind)[:, None]) != ~up[:, None]
+    else:
+        above = (stretch - mid[:, None]) * sign[:, None] >= 0
     cross = ~above[:, :-1] & above[:, 1:] & inside[:, 1:]
     has = cross.any(axis=1)
     span = stretch.shape[1]
@@ -431,8 +650,8 @@ def _linear_at(stretch: np.ndarray, k: np.ndarray, level: np.ndarray) -> np.ndar
     array([0.5])
     """
     rows = np.arange(len(k))
-    y1 = stretch[rows, k]
-    y2 = stretch[rows, k + 1]
+    y1 = _floats(stretch[rows, k])  # integer codes: no wrap-around in the difference
+    y2 = _floats(stretch[rows, k + 1])
     denom = y2 - y1
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(denom != 0, (level - y1) / denom, 0.5)

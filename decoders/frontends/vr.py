@@ -129,7 +129,10 @@ class VrFrontEnd(SampleFeed):
             opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
         return opts
 
-    def _process(self, x: np.ndarray, start: int, unit: float) -> Edges:
+    def _carry(self) -> np.ndarray:
+        return self._tail
+
+    def _process(self, x: np.ndarray, start: int, unit: float, joined: bool = False) -> Edges:
         if self._unit is None:
             self._unit = unit
             #: the offset in the units of the samples
@@ -141,7 +144,7 @@ class VrFrontEnd(SampleFeed):
             self._tail_start = start
             self._scanned = max(self._scanned, start)
             self._next_k = max(self._next_k, start)
-        buf = np.concatenate((self._tail, x)) if len(self._tail) else x
+        buf = np.concatenate((self._tail, x)) if len(self._tail) and not joined else x
         self._scan(buf, final=False)
         keep = min(4 + 2 * self._half, len(buf))
         self._tail = buf[len(buf) - keep :].copy()
@@ -158,7 +161,7 @@ class VrFrontEnd(SampleFeed):
             pending = min(pending, int(self._p_k[0][0]))
         return pending / self.sample_rate
 
-    def finish(self) -> Edges:
+    def _finish(self) -> Edges:
         if len(self._tail):
             self._scan(self._tail, final=True)
         times, dirs, strength = self._close_pending()
@@ -245,38 +248,102 @@ class VrFrontEnd(SampleFeed):
     ) -> int:
         """Close consecutive half-waves at once, as :meth:`_close` would one by one, for as long
         as each is an ordinary tooth half-wave (significant, not a spike, not clipped by the
-        envelope limits, alternating); returns how many were closed (0: the first is not).
+        envelope limits, alternating) or an insignificant one (below the arming level: noise
+        about the zero, in the gap); returns how many were closed (0: the first is neither).
 
         The running averages follow first-order recursions; computed with ``lfilter`` from the
-        state before the run, they are what :meth:`_close` gives one step at a time.
+        state before the run, they are what :meth:`_close` gives one step at a time. Which
+        half-waves are insignificant is guessed first, the averages are computed for that guess
+        and the guess is then checked half-wave by half-wave against them: the run ends at the
+        first half-wave the guess got wrong (it is closed on its own by the caller).
         """
         if self._width <= 0 or sign[0] == self._state:
             return 0
-        env = _run(_ENVELOPE, self.envelope, peak)
-        slow = _run(_SLOW, self._slow, peak)
+        return self._close_mixed(
+            start, end, sign, peak, self._quiet_guess(peak), times, dirs, strength
+        )
+
+    def _quiet_guess(self, peak: np.ndarray) -> np.ndarray:
+        """A guess of which half-waves are insignificant (peak below the arming level), for
+        :meth:`_close_mixed` to check: the envelope taken as the halving mean of the last few
+        peaks (as it is while teeth pass), the slow average as it stands."""
+        k = 6
+        ext = np.concatenate((np.full(k, self.envelope), peak[:-1]))
+        env = np.full(len(peak), 0.5**k * self.envelope)
+        for i in range(1, k + 1):
+            env += 0.5**i * ext[k - i : len(ext) - i + 1]
+        arm = np.maximum(max(self.floor, 0.12 * self._slow), self.fraction * env)
+        return peak < arm
+
+    def _close_mixed(
+        self,
+        start: np.ndarray,
+        end: np.ndarray,
+        sign: np.ndarray,
+        peak: np.ndarray,
+        quiet: np.ndarray,
+        times: list[np.ndarray],
+        dirs: list[np.ndarray],
+        strength: list[np.ndarray],
+    ) -> int:
+        """:meth:`_close_run` for half-waves of which those marked ``quiet`` are guessed
+        insignificant: each of those only lets the envelope decay (:meth:`_close`), the slow
+        average, the width and the last significant sign stay as they were. The averages are
+        computed for that guess; the run ends where they show it wrong."""
+        n = len(peak)
         width = end - start
-        wid = _run(_WIDTH, self._width, width)
+        loud = np.flatnonzero(~quiet)
+        # the slow average and the width follow the significant half-waves only; before
+        # half-wave j they hold what the last significant one before it left
+        before_j = np.cumsum(~quiet) - ~quiet
+        slow_s = _run(_SLOW, self._slow, peak[loud])
+        slow_pre = np.concatenate(([self._slow], slow_s))[before_j]
+        wid_s = _run(_WIDTH, self._width, width[loud])
+        wid_pre = np.concatenate(([self._width], wid_s))[before_j]
+        state_pre = np.concatenate(([self._state], sign[loud]))[before_j]
+        # the envelope: the mean recursion over each stretch of significant half-waves, a decay
+        # step at each insignificant one, in order
+        env = np.empty(n)
+        e = self.envelope
+        i = 0
+        for q in [*np.flatnonzero(quiet).tolist(), n]:
+            if q > i:
+                env[i:q] = _run(_ENVELOPE, e, peak[i:q])
+                e = float(env[q - 1])
+            if q < n:
+                e = max(e * self.decay, self.floor)
+                env[q] = e
+            i = q + 1
         env_pre = np.concatenate(([self.envelope], env[:-1]))
-        slow_pre = np.concatenate(([self._slow], slow[:-1]))
-        wid_pre = np.concatenate(([self._width], wid[:-1]))
         arm = np.maximum(np.maximum(self.floor, self.fraction * env_pre), 0.12 * slow_pre)
+        below = peak < arm
         spike = (width < 0.12 * wid_pre) | ((width < 0.25 * wid_pre) & (peak > 2.0 * env_pre))
-        ok = ~(peak < arm) & ~spike & (peak <= 4.0 * env_pre) & (peak <= 4.0 * slow_pre)
-        f = len(ok) if ok.all() else int(np.argmin(ok))
+        ordinary = (
+            ~below
+            & ~spike
+            & (peak <= 4.0 * env_pre)
+            & (peak <= 4.0 * slow_pre)
+            & (sign != state_pre)
+        )
+        ok = np.where(quiet, below, ordinary)
+        f = n if ok.all() else int(np.argmin(ok))
         if f == 0:
             return 0
-        before = np.concatenate(([self._last_peak[-int(sign[0])]], peak[: f - 1]))
-        times.append(start[:f])
-        dirs.append(sign[:f])
-        strength.append(peak[:f] + before)
-        last = int(sign[f - 1])
-        self._state = last
-        self._last_peak[last] = float(peak[f - 1])
-        if f >= 2:
-            self._last_peak[-last] = float(peak[f - 2])
+        teeth = loud[: int(np.searchsorted(loud, f))]
+        if len(teeth):
+            tp = peak[teeth]
+            before = np.concatenate(([self._last_peak[-int(sign[teeth[0]])]], tp[:-1]))
+            times.append(start[teeth])
+            dirs.append(sign[teeth])
+            strength.append(tp + before)
+            last = int(sign[teeth[-1]])
+            self._state = last
+            self._last_peak[last] = float(tp[-1])
+            if len(teeth) >= 2:
+                self._last_peak[-last] = float(tp[-2])
+            self._slow = float(slow_s[len(teeth) - 1])
+            self._width = float(wid_s[len(teeth) - 1])
         self.envelope = float(env[f - 1])
-        self._slow = float(slow[f - 1])
-        self._width = float(wid[f - 1])
         return f
 
     def _close_all(
@@ -472,9 +539,27 @@ def _compare(x: np.ndarray, above: tuple[str, float]) -> np.ndarray:
 
 def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     """The recursion ``rec`` over ``x`` from the value ``y0``: y[0], y[1], ..."""
+    if len(x) <= RUN_BY_STEPS and _PLAIN:
+        return _steps_of(rec, y0, x)
+    return _lfilter_run(rec, y0, x)
+
+
+def _lfilter_run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     b, k = rec
     y, _ = lfilter([b], [1.0, -k], x, zi=[k * y0])
     return y
+
+
+def _steps_of(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
+    """The recursion ``rec`` step by step, as :func:`_follow` takes each step (the same
+    numbers as ``lfilter`` when :data:`_PLAIN`): a short run costs less than calling it."""
+    b, k = rec
+    out = []
+    y = y0
+    for v in x.tolist():
+        y = b * v + k * y
+        out.append(y)
+    return np.array(out, dtype=float)
 
 
 def _lfilter_is_plain() -> bool:
@@ -483,15 +568,17 @@ def _lfilter_is_plain() -> bool:
     multiplies and adds); then a single step need not call it."""
     rng = np.random.default_rng(1)
     x = rng.random(512) * 10.0 ** rng.integers(-6, 3, 512)
-    for b, k in (_SLOW, _WIDTH):
+    for b, k in (_ENVELOPE, _SLOW, _WIDTH):
         prev = 0.3
-        for xi, yi in zip(x.tolist(), _run((b, k), prev, x).tolist(), strict=True):
+        for xi, yi in zip(x.tolist(), _lfilter_run((b, k), prev, x).tolist(), strict=True):
             if b * xi + k * prev != yi:
                 return False
             prev = yi
     return True
 
 
+#: runs of at most this many half-waves are computed step by step (see :func:`_run`)
+RUN_BY_STEPS = 96
 _PLAIN = _lfilter_is_plain()
 
 
@@ -504,7 +591,7 @@ def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
     """
     if _PLAIN:
         return rec[0] * x + rec[1] * y0
-    return float(_run(rec, y0, np.array([x]))[0])
+    return float(_lfilter_run(rec, y0, np.array([x]))[0])
 
 
 def spectral_noise(y: np.ndarray, n_max: int = 1 << 18) -> float:

@@ -5,7 +5,9 @@ Samples come out as float64 in the file's full-scale units: PCM of any width map
 float file has no hard limit). Channels are named ``ch0``, ``ch1``, ... in file order.
 
 Files are streamed with ``SoundFile.read(frames)``; each call of ``blocks()`` opens its own handle,
-so two passes may even run side by side.
+so two passes may even run side by side. A plain 16-bit PCM WAV (the common sound-card capture) is
+read straight from its data chunk instead: its bytes are the little-endian codes libsndfile would
+give, and reading them costs about a tenth of libsndfile's conversion to floats.
 """
 
 from __future__ import annotations
@@ -112,6 +114,10 @@ class WavHeader:
     data_size: int
     #: bytes of the file after the data chunk's header
     available: int
+    #: where the samples start: the offset of the data chunk's first byte in the file
+    data_offset: int = 0
+    #: integer PCM (format tag 1, or WAVE_FORMAT_EXTENSIBLE with the PCM sub-format)
+    pcm: bool = False
 
     @property
     def streaming(self) -> bool:
@@ -149,7 +155,12 @@ def _wav_header(path: Path) -> WavHeader | None:
                     if fmt is None or len(fmt) < 16:
                         return None
                     tag, channels, _rate, _bps, align, bits = struct.unpack("<HHIIHH", fmt[:16])
-                    return WavHeader(tag, channels, bits, align, n, size - f.tell())
+                    # WAVE_FORMAT_EXTENSIBLE: the sub-format GUID starts with the format tag
+                    sub = struct.unpack("<H", fmt[24:26])[0] if len(fmt) >= 26 else None
+                    pcm = tag == 1 or (tag == 0xFFFE and sub == 1)
+                    return WavHeader(
+                        tag, channels, bits, align, n, size - f.tell(), f.tell(), pcm
+                    )
                 else:
                     f.seek(n + (n & 1), os.SEEK_CUR)
     except (OSError, struct.error):
@@ -200,16 +211,37 @@ def _reason(exc: BaseException) -> str:
     return text[:1].lower() + text[1:] if text else type(exc).__name__
 
 
+def _plain_pcm16(wav: WavHeader, info: CaptureInfo) -> bool:
+    """True when the WAV header describes what libsndfile reads as PCM_16 frames of
+    ``info.n_channels`` little-endian 16-bit codes, nothing else in between."""
+    return (
+        info.subtype == "PCM_16"
+        and wav.pcm
+        and wav.bits == 16
+        and wav.channels == info.n_channels
+        and wav.block_align == 2 * wav.channels
+        and wav.data_offset > 0
+    )
+
+
 class AudioSource(SourceBase):
     """An open sound file (see :func:`toothcomb.decoders.readers.open_capture`)."""
 
-    def __init__(self, path: Path, info: CaptureInfo, read_frames: int) -> None:
+    def __init__(
+        self, path: Path, info: CaptureInfo, read_frames: int, wav: WavHeader | None = None
+    ) -> None:
         super().__init__(info)
         self._path = path
         self._frames = read_frames
-        self._handles: set[sf.SoundFile] = set()
+        self._handles: set[Any] = set()
+        #: a plain 16-bit PCM WAV: its samples are read as the bytes they are stored as
+        #: (:meth:`_raw_pieces`), which is what libsndfile gives, without its per-call cost
+        self._raw = wav if (wav is not None and _plain_pcm16(wav, info)) else None
 
     def _pieces(self, block_size: int, codes: bool = False) -> Iterator[np.ndarray]:
+        if self._raw is not None:
+            yield from self._raw_pieces(self._raw, block_size, codes)
+            return
         try:
             handle = sf.SoundFile(self._path)
         except (sf.SoundFileError, RuntimeError, OSError) as exc:
@@ -240,18 +272,62 @@ class AudioSource(SourceBase):
             handle.close()
             self._handles.discard(handle)
 
+    def _raw_pieces(self, wav: WavHeader, block_size: int, codes: bool) -> Iterator[np.ndarray]:
+        """The samples of a plain 16-bit PCM WAV, read straight from its data chunk: the
+        little-endian codes libsndfile reads as int16 (and scales as :meth:`_read` does)."""
+        try:
+            handle = open(self._path, "rb")  # closed below, or by close()
+        except OSError as exc:
+            raise CaptureError(
+                f"{self.info.path}: cannot be reopened ({exc.strerror or exc})"
+            ) from None
+        self._handles.add(handle)
+        channels = self.info.n_channels
+        try:
+            handle.seek(wav.data_offset)
+            left = self._frames
+            pos = 0
+            while left > 0:
+                n = min(block_size, left)
+                raw = np.empty((n, channels), dtype="<i2")
+                try:
+                    got = handle.readinto(memoryview(raw).cast("B")) or 0
+                except OSError as exc:
+                    raise CaptureError(
+                        f"{self.info.path}: audio data cannot be read between frames {pos} and "
+                        f"{pos + n} of {self._frames} ({exc.strerror or exc}); the file looks "
+                        "truncated or corrupt"
+                    ) from None
+                whole = got // wav.block_align
+                if whole == 0:
+                    raise CaptureError(
+                        f"{self.info.path}: audio data ends at frame {pos} although the file "
+                        f"announces {self._frames}; the file looks truncated"
+                    )
+                raw = raw[:whole].astype(np.int16, copy=False)
+                pos += whole
+                left -= whole
+                yield self._arrange(raw, codes)
+        finally:
+            handle.close()
+            self._handles.discard(handle)
+
+    def _arrange(self, raw: np.ndarray, codes: bool) -> np.ndarray:
+        """Integer samples (frames, channels) as :meth:`_read` gives them: the codes, each
+        channel contiguous, or float64 values."""
+        if codes:
+            return np.ascontiguousarray(raw.T).T
+        out = np.empty((raw.shape[1], raw.shape[0]))
+        np.multiply(raw.T, INTEGER_READ[self.info.subtype][1], out=out)
+        return out.T
+
     def _read(self, handle: sf.SoundFile, n: int, codes: bool = False) -> np.ndarray:
         """Up to ``n`` frames as float64 (frames, channels), or as the integer codes when
         ``codes``; each channel contiguous in memory."""
         how = INTEGER_READ.get(self.info.subtype)
         if how is None:
             return handle.read(n, dtype="float64", always_2d=True)
-        raw = handle.read(n, dtype=how[0], always_2d=True)
-        if codes:
-            return np.ascontiguousarray(raw.T).T
-        out = np.empty((raw.shape[1], raw.shape[0]))
-        np.multiply(raw.T, how[1], out=out)
-        return out.T
+        return self._arrange(handle.read(n, dtype=how[0], always_2d=True), codes)
 
     @property
     def code_scale(self) -> float | None:
@@ -281,6 +357,16 @@ class AudioSource(SourceBase):
     def read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
         """``length`` frames from each of ``starts`` (fewer at the end of the file), as float64
         (frames, channels): samples from anywhere in the file without reading all of it."""
+        wav = self._raw
+        if wav is not None:
+            with open(self._path, "rb") as f:
+                for s in starts:
+                    n = max(0, min(int(length), self._frames - int(s)))
+                    raw = np.empty((n, self.info.n_channels), dtype="<i2")
+                    f.seek(wav.data_offset + int(s) * wav.block_align)
+                    got = (f.readinto(memoryview(raw).cast("B")) or 0) if n else 0
+                    yield self._arrange(raw[: got // wav.block_align].astype(np.int16), False)
+            return
         with sf.SoundFile(self._path) as handle:
             for s in starts:
                 handle.seek(int(s))
@@ -372,4 +458,4 @@ class AudioReader:
             full_scale=(full,) * channels,
             notes=tuple(notes),
         )
-        return AudioSource(p, info, frames)
+        return AudioSource(p, info, frames, wav)
