@@ -37,6 +37,19 @@ from .timeline import CrankTimeline
 SPLIT_DEG = 20.0
 
 
+def run_shift(run: np.ndarray, shift: dict[int, int]) -> np.ndarray:
+    """Each event's revolution shift, by its sync run (0 for a run ``shift`` does not name).
+
+    >>> run_shift(np.array([0, 0, 1, 2]), {1: 1, 2: 0}).tolist()
+    [0, 0, 1, 0]
+    """
+    s = np.zeros(len(run), dtype=int)
+    for r, v in shift.items():
+        if v:
+            s[run == r] = v
+    return s
+
+
 @dataclass(frozen=True)
 class CamEvents:
     """Cam events that have a crank angle."""
@@ -62,7 +75,7 @@ class CamEvents:
 
     def cycle_angle(self, shift: dict[int, int]) -> np.ndarray:
         """Angle in the 720 deg cycle, with each run's revolution parity shifted by ``shift``."""
-        s = np.array([shift.get(int(r), 0) for r in self.run], dtype=int)
+        s = run_shift(self.run, shift)
         return np.mod((self.rev + s) % 2 * 360.0 + self.angle, 720.0)
 
     def select(self, mask: np.ndarray) -> CamEvents:
@@ -272,7 +285,7 @@ def _tracked_clusters(ev: CamEvents, position: np.ndarray, period: float, cycles
 
 def _cycles(ev: CamEvents, shift: dict[int, int], period: float) -> tuple[np.ndarray, np.ndarray]:
     """Cycle (or revolution) index of each event and the indices that were seen whole."""
-    s = np.array([shift.get(int(r), 0) for r in ev.run], dtype=int)
+    s = run_shift(ev.run, shift)
     revs = ev.rev + s
     per = 2 if period == 720.0 else 1
     cyc = (revs // per) + ev.run * 1_000_000

@@ -109,13 +109,20 @@ class _Moments:
         self.lo_d, self.hi_d = min(self.lo_d, float(d.min())), max(self.hi_d, float(d.max()))
         self._s = np.concatenate((self._s, s))
         self._d = np.concatenate((self._d, d))
-        while len(self._s) >= self.GROUP:
-            self._commit(self.GROUP)
+        m = len(self._s) // self.GROUP
+        if m:
+            self._commit(m)
 
-    def _commit(self, k: int) -> None:
-        a, b = self._s[:k], self._d[:k]
-        self.sq_s += float(np.sum(a * a))
-        self.sq_d += float(np.sum(b * b))
+    def _commit(self, m: int) -> None:
+        """Add the squares of the first ``m`` whole groups, group by group (each group's sum
+        is the same whatever batches the values came in, so the figures are too)."""
+        k = m * self.GROUP
+        a = self._s[:k].reshape(m, self.GROUP)
+        b = self._d[:k].reshape(m, self.GROUP)
+        for v in np.sum(a * a, axis=1).tolist():
+            self.sq_s += v
+        for v in np.sum(b * b, axis=1).tolist():
+            self.sq_d += v
         self._s, self._d = self._s[k:], self._d[k:]
 
     def figures(self, scale: float) -> tuple[float, float, float, float]:
@@ -188,10 +195,18 @@ class CrankJitter:
         if len(g) < 4:
             return
         full = np.arange(g[0], g[-1] + 1)
-        k = np.clip(np.searchsorted(g, full, side="right") - 1, 0, len(g) - 2)
-        tf, _ = local_cubic(full.astype(float), g.astype(float), t, k)
         if len(full) < 2 * h + 1:
             return
+        # a position with a tooth has its time; only the others (the gap, missing teeth) are
+        # filled by the local cubic
+        tf = np.empty(len(full))
+        tf[g - g[0]] = t
+        empty = np.ones(len(full), dtype=bool)
+        empty[g - g[0]] = False
+        if np.any(empty):
+            q = full[empty]
+            k = np.clip(np.searchsorted(g, q, side="right") - 1, 0, len(g) - 2)
+            tf[empty], _ = local_cubic(q.astype(float), g.astype(float), t, k)
         ideal = np.correlate(tf, self._c, "valid")  # positions full[h : len - h]
         deriv = np.correlate(tf, self._d, "valid")
         centre = full[h : len(full) - h]
