@@ -22,6 +22,7 @@ files). A user file whose name matches a built-in one takes its place, and the l
 
 from __future__ import annotations
 
+import functools
 import os
 import re
 import tomllib
@@ -123,7 +124,10 @@ def user_dirs() -> list[Path]:
     return [Path(d) for d in raw.split(os.pathsep) if d.strip()]
 
 
+@functools.cache
 def _builtin(kind: str) -> dict[str, PatternFile]:
+    """The built-in patterns of ``kind`` (package data: read once per process; callers copy
+    the dict before changing it)."""
     out: dict[str, PatternFile] = {}
     folder = resources.files(__package__ or "toothcomb.decoders.patterns") / kind
     for item in sorted(folder.iterdir(), key=lambda x: x.name):
@@ -143,7 +147,7 @@ def entries(kind: Kind | str) -> dict[str, PatternFile]:
     wrong one."""
     if kind not in KINDS:
         raise UsageError(f"pattern kind {kind!r} is unknown; use crank or cam")
-    out = _builtin(kind)
+    out = dict(_builtin(kind))
     for folder in user_dirs():
         if not folder.is_dir():
             raise UsageError(

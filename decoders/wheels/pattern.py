@@ -327,8 +327,20 @@ def steps_from_teeth(angles: Sequence[float], where: str = "wheel") -> tuple[int
     )
 
 
+_BUILT_IN_SPECS: dict[str, MissingToothSpec | PatternSpec] = {}
+
+
 def spec_from_file(pf: PatternFile) -> MissingToothSpec | PatternSpec:
-    """The wheel a crank pattern file describes."""
+    """The wheel a crank pattern file describes (a built-in one is worked out once)."""
+    if pf.origin == "built-in":
+        spec = _BUILT_IN_SPECS.get(pf.source)
+        if spec is None:
+            spec = _BUILT_IN_SPECS[pf.source] = _spec_from_file(pf)
+        return spec
+    return _spec_from_file(pf)
+
+
+def _spec_from_file(pf: PatternFile) -> MissingToothSpec | PatternSpec:
     d = pf.data
     keys = [k for k in ("notation", "teeth_deg", "missing_positions") if k in d]
     if len(keys) != 1:
