@@ -113,11 +113,12 @@ def _wheel_from_hint(text: str) -> WheelSpec:
 def _hint_score(times: np.ndarray, spec: WheelSpec) -> tuple[int, int, float]:
     """How well one direction's events show ``spec``'s gap: (whole gaps, gaps split by a runt
     edge, minus the median misfit of the whole ones); larger is better, in that order. For a
-    library wheel: (tooth-1 matches one revolution apart, 0, minus their median misfit)."""
+    library wheel: (tooth-1 matches, when most come a revolution apart; 0, minus their median
+    misfit)."""
     if isinstance(spec, PatternSpec):
         sc = score(times, spec)
-        good = round(sc.confidence * max(sc.matches - 1, 0)) + (1 if sc.matches else 0)
-        return good, 0, -sc.misfit if sc.matches else -1.0
+        good = sc.matches if sc.confidence >= LIBRARY_CONFIDENCE else 0
+        return good, 0, -sc.misfit if good else -1.0
     whole = np.empty(0, dtype=int)
     cand = gap_candidates(times)
     m, err = gap_fit(times)
