@@ -22,6 +22,7 @@ import math
 import re
 import warnings
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy.signal import savgol_filter
@@ -110,13 +111,23 @@ class MissingToothSpec:
 
     def span(self, tooth: int, n: int) -> int:
         """Pitches from ``tooth`` to the tooth ``n`` teeth later."""
-        full, rest = divmod(n, self.teeth)
-        total = full * self.positions
-        t = tooth
-        for _ in range(rest):
-            total += self.step(t)
-            t = t % self.teeth + 1
-        return total
+        return span_of(self, tooth, n)
+
+
+def span_of(spec: MissingToothSpec | Any, tooth: int, n: int) -> int:
+    """Pitches from ``tooth`` to the tooth ``n`` teeth later on any wheel spec (``teeth``,
+    ``positions`` and ``step(tooth)``).
+
+    >>> span_of(MissingToothSpec(12, 1), 10, 3)      # tooth 10 -> 11 -> (gap) 1 -> 2
+    4
+    """
+    full, rest = divmod(n, spec.teeth)
+    total = full * spec.positions
+    t = tooth
+    for _ in range(rest):
+        total += spec.step(t)
+        t = t % spec.teeth + 1
+    return total
 
 
 class MissingToothWheel:

@@ -43,7 +43,7 @@ import numpy as np
 from ..errors import UsageError
 from ..patterns import PatternFile, find
 from .base import ToothTrack
-from .missing_tooth import MissingToothSpec, MissingToothWheel, ToothTracker, _Out
+from .missing_tooth import MissingToothSpec, MissingToothWheel, ToothTracker, _Out, span_of
 
 #: largest grid a library wheel may use (0.5 deg)
 MAX_POSITIONS = 720
@@ -132,13 +132,7 @@ class PatternSpec:
 
     def span(self, tooth: int, n: int) -> int:
         """Pitches from ``tooth`` to the tooth ``n`` teeth later."""
-        full, rest = divmod(n, self.teeth)
-        total = full * self.positions
-        k = tooth - 1
-        for _ in range(rest):
-            total += self.steps[k]
-            k = (k + 1) % self.teeth
-        return total
+        return span_of(self, tooth, n)
 
     def signature(self) -> np.ndarray:
         """Log ratios of the window's intervals: ``window`` before tooth 1 and the one after."""
