@@ -365,11 +365,20 @@ def estimate_levels(
     data = np.concatenate(parts)
     if not np.isfinite(data).all():
         return measure_levels(source, block_size, progress)
-    diffs = np.concatenate([np.abs(np.diff(p, axis=0)) for p in parts])
+    lengths = {len(p) for p in parts}
     n = data.shape[0]
     out = []
     for j, name in enumerate(info.channels):
         v = data[:, j]
+        # differences of neighbouring samples inside each window (none across a join), and
+        # their median, worked out on a scratch copy of the channel's samples
+        if len(lengths) == 1:
+            d = np.diff(v.reshape(len(parts), -1), axis=1)
+        else:
+            inside = np.ones(n - 1, dtype=bool)
+            inside[np.cumsum([len(p) for p in parts[:-1]], dtype=np.intp) - 1] = False
+            d = np.compress(inside, np.diff(v))
+        noise = float(np.median(np.abs(d, out=d), overwrite_input=True)) / NOISE_DIVISOR
         lo, hi = float(v.min()), float(v.max())
         if lo == hi:
             mean, std = lo, 0.0
@@ -389,7 +398,7 @@ def estimate_levels(
                 mean=mean,
                 std=std,
                 percentiles=tuple(float(p) for p in np.percentile(v, ChannelLevels.POINTS)),
-                noise=float(np.median(diffs[:, j])) / NOISE_DIVISOR,
+                noise=noise,
                 clipped_fraction=(at_lo if lo == hi else at_lo + at_hi) / n,
                 non_finite=0,
                 subsample=n,

@@ -42,6 +42,7 @@ from .analysis.jitter import CrankJitter, tooth_offsets
 from .analysis.phaser import with_phaser
 from .analysis.timeline import CamLocator
 from .errors import DecodeError, SignalError, UsageError
+from .frontends.hall import HallFrontEnd
 from .levels import CLIP_SHARE, FiniteWatch, check_finite, estimate_levels
 from .model import CaptureInfo, CaptureSource, ChannelLevels, Edges
 from .options import DecodeOptions
@@ -523,9 +524,10 @@ def _stream_prefix(
     """Edges of the first ``seconds`` of each channel; also whether that was the whole capture."""
     fs = source.info.sample_rate
     stop = int(min(source.info.n_samples, max(1.0, seconds * fs)))
-    fes = {c: _frontend(looks[c], fs, levels[c]) for c in channels}
-    parts: dict[int, list[Edges]] = {c: [] for c in channels}
-    for block in source.blocks(block_size):
+    found = {c: looks[c].probe_edges for c in channels if _probe_edges_fit(looks[c], stop)}
+    fes = {c: _frontend(looks[c], fs, levels[c]) for c in channels if c not in found}
+    parts: dict[int, list[Edges]] = {c: [] for c in fes}
+    for block in source.blocks(block_size) if fes else ():
         data = block.data[: max(0, stop - block.start)]
         for c, fe in fes.items():
             parts[c].append(fe.process(data[:, c], block.start))
@@ -533,7 +535,19 @@ def _stream_prefix(
             break
     for c, fe in fes.items():
         parts[c].append(fe.finish())
-    return {c: Edges.concat(p) for c, p in parts.items()}, stop >= source.info.n_samples
+    edges = {c: Edges.concat(parts[c]) if c in parts else found[c] for c in channels}
+    return edges, stop >= source.info.n_samples
+
+
+def _probe_edges_fit(look: ChannelLook, stop: int) -> bool:
+    """Whether the edges found while the channel was looked at are those of its first ``stop``
+    samples, from the front end a decode uses (the built-in Hall one: the same edges, whatever
+    the blocks)."""
+    return (
+        look.probe_edges is not None
+        and look.probe_samples == stop
+        and plugin(FRONTENDS, look.kind) is HallFrontEnd
+    )
 
 
 def _frontend(look: ChannelLook, sample_rate: float, levels: ChannelLevels):

@@ -480,3 +480,104 @@ def test_hall_persistence_check_counts_when_a_stretch_is_not_clean():
     assert 0 < np.count_nonzero(want) < len(want)  # some hold, some do not
     assert np.count_nonzero(n_a < P) > 10  # and many are not clean, yet hold or not as counted
     np.testing.assert_array_equal(got, want)
+
+
+def test_hall_binned_step_search_is_the_definition():
+    """Dense steps on integer codes are searched by bins of a power of two no larger than the
+    threshold (two codes further apart than the threshold lie in different bins), subtracting
+    only the samples whose bin moved. It must find what the sample-by-sample definition finds:
+    16-bit codes swinging more than half the scale (their difference needs 32 bits), 8-bit
+    unsigned and 32-bit codes; thresholds of a fraction of the swing, a power of two, a
+    half-code, one code and more than the type can hold."""
+    rng = np.random.default_rng(19)
+    W = 5
+    for dtype, lo, hi in ((np.int16, -20000, 21000), (np.uint8, 10, 240), (np.int32, -2e9, 2e9)):
+        info = np.iinfo(dtype)
+        x = _cam_like(12_000, list(range(37, 12_000, 61)), lo, hi, rng)
+        codes = np.round(x).clip(info.min, info.max).astype(dtype)
+        swing = hi - lo
+        for thr in (0.4 * swing, 2.0 ** math.floor(math.log2(0.4 * swing)), 0.4 * swing + 0.5,
+                    1, 2.0 * (info.max - float(info.min))):
+            want = step_runs_by_hand(codes, W, thr)
+            got = hall_mod._steps_binned(codes, W, thr)
+            if thr == 1:
+                # noise moves nearly every sample to another bin of one code: left to the dense
+                # search, which must find the same
+                assert got is None
+            else:
+                assert got is not None, (dtype, thr)
+                assert list(zip(*(a.tolist() for a in got), strict=True)) == want, (dtype, thr)
+                assert len(want) >= (190 if thr < swing else 0)
+            assert _steps_list_dense(codes, W, thr) == want, (dtype, thr)
+    # below one code every difference may count: no bins
+    assert hall_mod._steps_binned(np.array([0, 1, 0, 1], np.int16), 1, 0.5) is None
+
+
+def _steps_list_dense(x: np.ndarray, W: int, thr: float) -> list[tuple[int, int, int]]:
+    s, e, sign = hall_mod._steps(x, W, thr, dense=True)
+    return list(zip(s.tolist(), e.tolist(), sign.tolist(), strict=True))
+
+
+def test_hall_binned_search_gives_up_when_a_level_sits_on_a_bin_edge():
+    """A level right at a multiple of the bin puts most samples in a moving bin: the binned
+    search hands over to the dense one, and the runs are still those of the definition."""
+    rng = np.random.default_rng(20)
+    n, W, thr = 20_000, 4, 9000
+    codes = (8192 + rng.integers(-3, 4, n)).astype(np.int16)  # bin of 8192 codes: 8192 is an edge
+    codes[5000:5400] = 30000
+    assert hall_mod._steps_binned(codes, W, thr) is None
+    want = step_runs_by_hand(codes, W, thr)
+    assert [r[2] for r in want] == [1, -1]  # source: one pulse, a step up then down
+    assert _steps_list_dense(codes, W, thr) == want
+
+
+def last_crossing_by_hand(
+    x: np.ndarray, limit: np.ndarray, level: np.ndarray, sign: np.ndarray, W: int
+) -> tuple[list[int], list[bool]]:
+    """The definition, row by row in plain Python: the last column j with sample j short of the
+    level and sample j + 1 at or beyond it (in the row's direction), j + 1 <= limit; W - 1 and
+    False without one."""
+    ks, has = [], []
+    for row, lim, lv, sg in zip(x.tolist(), limit.tolist(), level.tolist(), sign.tolist(),
+                                strict=True):
+        beyond = [(v - lv) * sg >= 0 for v in row]
+        js = [j for j in range(len(row) - 1) if not beyond[j] and beyond[j + 1] and j + 1 <= lim]
+        ks.append(js[-1] if js else W - 1)
+        has.append(bool(js))
+    return ks, has
+
+
+@pytest.mark.parametrize("span", [2, 3, 8, 12, 17, 48, 49, 70])
+def test_hall_crossing_found_on_bits_is_the_definition(span):
+    """Stretches of up to 48 samples are searched as numbers, a bit per sample beyond the
+    midpoint; longer ones by the plain search. Both must give the last crossing the definition
+    gives, for integer codes and floats, rising and falling, at whole and half-code levels."""
+    rng = np.random.default_rng(21 + span)
+    n = 400
+    x = rng.integers(-6, 7, size=(n, span)).astype(np.int16)
+    level = np.round(rng.uniform(-4, 4, n) * 2) / 2
+    sign = np.where(rng.random(n) < 0.5, 1, -1)
+    limit = rng.integers(0, span, n)
+    want_k, want_has = last_crossing_by_hand(x, limit, level, sign, 3)
+    assert 0 < sum(want_has) < n
+    for stretch in (x, x.astype(float)):
+        k, has = hall_mod._last_crossing_within(stretch, limit, level, sign, 3)
+        assert k.tolist() == want_k
+        assert has.tolist() == want_has
+
+
+def test_hall_plateau_levels_are_numpys_median_and_mean():
+    """A flank's levels: the median of the first three samples of its window (w >= 3) or the
+    mean of its w samples, as float64; gathered sample by sample, they must be numpy's median
+    and mean of the rows."""
+    rng = np.random.default_rng(22)
+    x = rng.integers(-1000, 1000, 5000).astype(np.int16)
+    first = rng.integers(0, 4990, 300)
+    for data in (x, x * 0.25):
+        for w in (1, 2, 3, 5):
+            rows = data[first[:, None] + np.arange(w)].astype(float)
+            # source: numpy documentation (numpy.median, numpy.mean)
+            want = np.median(rows[:, :3], axis=1) if w >= 3 else rows.mean(axis=1)
+            got = hall_mod._plateau_level(data, first, w)
+            assert got.dtype == np.float64
+            np.testing.assert_array_equal(got, want)

@@ -604,3 +604,114 @@ def test_progress_goes_to_stderr_only_on_a_terminal_and_not_when_quiet(tmp_path,
     assert isinstance(seen[0], StageProgress) and seen[1] is None
     with progress_for(Console(file=io.StringIO()), enabled=True) as cb:
         assert cb is None  # a pipe or a file: no bar
+
+
+# --------------------------------------------------------------------------- fixed costs
+
+
+def test_channel_sharpness_is_the_flank_by_flank_definition():
+    """The sharpness of a channel (the share of each flank's step done within 10 us) is taken
+    for all flanks in one reduction; it must be what looking at each flank's stretch gives,
+    flanks at the ends of the probe (cut-off or empty stretches) included."""
+    from toothcomb.decoders.analysis.identify import SHARP_SPAN_S, _sharpness
+
+    rng = np.random.default_rng(23)
+
+    def by_hand(probe: np.ndarray, e: Edges, fs: float) -> float:
+        h = max(1, round(SHARP_SPAN_S * fs / 2))
+        d = [abs(probe[i + 2 * h] - probe[i]) for i in range(len(probe) - 2 * h)]
+        shares = []
+        for t, strength in zip(e.times.tolist(), e.strength.tolist(), strict=True):
+            pos = round(t * fs) - h  # numpy's rint rounds halves to even, as round() does
+            a = min(max(pos - 3 * h - 2, 0), len(d) - 1)
+            b = min(max(pos + 3 * h + 3, 1), len(d))
+            shares.append((max(d[a:b]) if b > a else 0.0) / strength)
+        # source: numpy documentation (numpy.median)
+        return float(np.median(shares))
+
+    for trial in range(60):
+        fs = float(rng.choice([44_100.0, 192_000.0, 1e6]))
+        n = int(rng.integers(30, 2000))
+        probe = rng.normal(size=n).cumsum()
+        k = int(rng.integers(1, 30))
+        times = np.sort(rng.uniform(-3 / fs, (n + 3) / fs, k))
+        e = Edges(times, np.ones(k, np.int8), rng.uniform(0.5, 3.0, k))
+        assert _sharpness(probe, e, fs) == by_hand(probe, e, fs), trial
+
+
+def test_the_first_seconds_take_the_hall_edges_found_while_looking(tmp_path, monkeypatch):
+    """A Hall channel's edges in the probe are found once, while the channel is looked at; the
+    first seconds reuse them only when they cover the same samples. They must be the edges the
+    front end finds block by block, and a decode must be the same without the reuse."""
+    from dataclasses import replace
+
+    from toothcomb.decoders.analysis.identify import look_at_channel
+
+    path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=1.5), "wav")
+    with open_capture(str(path)) as src:
+        fs = src.info.sample_rate
+        lv = estimate_levels(src, 4096)
+        probe = pipeline.read_probe(src, src.info.n_samples, 4096)
+        cam = look_at_channel(probe[:, 1], fs, lv[1])
+        assert cam.kind == "hall" and cam.probe_samples == src.info.n_samples
+        assert pipeline._probe_edges_fit(cam, src.info.n_samples)
+        assert not pipeline._probe_edges_fit(cam, src.info.n_samples - 1)
+        looks = {1: replace(cam, probe_edges=None)}  # found again, block by block
+        again, whole = pipeline._stream_prefix(src, [1], looks, lv, 4.0, 999)
+    assert whole and len(cam.probe_edges) >= 4  # source: the simulated cam turns 6 times
+    np.testing.assert_array_equal(again[1].times, cam.probe_edges.times)
+    np.testing.assert_array_equal(again[1].direction, cam.probe_edges.direction)
+    np.testing.assert_array_equal(again[1].strength, cam.probe_edges.strength)
+    reused = _decode_json(path, block_size=4096)
+    monkeypatch.setattr(pipeline, "_probe_edges_fit", lambda look, stop: False)
+    assert _decode_json(path, block_size=4096) == reused
+
+
+def test_two_channel_codes_are_split_as_numpy_transposes_them():
+    from toothcomb.decoders.readers.audio import _split_pairs
+
+    raw = RNG.integers(-(2**15), 2**15, size=(10_007, 2)).astype(np.int16)
+    raw[:4] = [[-(2**15), 2**15 - 1], [-1, 0], [0, -1], [2**15 - 1, -(2**15)]]
+    # source: numpy documentation (numpy.ascontiguousarray of the transpose)
+    np.testing.assert_array_equal(_split_pairs(raw), np.ascontiguousarray(raw.T))
+
+
+def test_wav_windows_are_read_together_as_soundfile_reads_them(tmp_path: Path):
+    """The windows of a plain 16-bit WAV are read into one array and made floats at once; each
+    must be libsndfile's float conversion of its frames, cut short (or empty) at the end."""
+    x = np.clip(RNG.normal(size=(9_000, 2)) * 0.4, -1.0, 1.0)
+    path = tmp_path / "t.wav"
+    sf.write(path, x, 48000, subtype="PCM_16")
+    # source: python-soundfile / libsndfile, read(dtype="float64")
+    want = sf.read(path, dtype="float64", always_2d=True)[0]
+    starts = [0, 17, 4000, 8990, 9000, 500]
+    with open_capture(str(path)) as src:
+        got = list(src.read_windows(starts, 64))
+    assert [len(w) for w in got] == [64, 64, 64, 10, 0, 64]
+    for s, w in zip(starts, got, strict=True):
+        assert w.dtype == np.float64 and w.shape[1] == 2
+        assert np.array_equal(w, want[s : s + 64])
+
+
+@pytest.mark.parametrize("uneven", [False, True])
+def test_window_noise_is_the_median_difference_inside_the_windows(uneven: bool):
+    """The noise of spread-window levels comes from differences of neighbouring samples inside
+    each window, never across two; windows of equal length are reshaped rather than cut."""
+
+    class Uneven(WindowSource):
+        def read_windows(self, starts, length: int) -> Iterator[np.ndarray]:
+            for k, s in enumerate(starts):
+                yield self.data[s : s + length - (k % 3 if uneven else 0)]
+
+    n = 400_000
+    x = np.stack([np.cumsum(RNG.normal(size=n)), RNG.normal(size=n)], axis=1)
+    src = Uneven(x)
+    got = estimate_levels(src, 4096, sparse_above=100_000)
+    windows = list(src.read_windows(window_starts(n), levels_mod.WINDOW))
+    for j, lv in enumerate(got):
+        d = np.concatenate([np.abs(np.diff(w[:, j])) for w in windows])
+        # source: the median absolute difference over 0.6745 * sqrt(2) is sigma for white
+        # Gaussian noise (module docstring of levels); numpy.median is the reference
+        assert lv.noise == float(np.median(d)) / (0.6745 * math.sqrt(2.0))
+        assert lv.n == sum(len(w) for w in windows)
+    assert got[1].noise == pytest.approx(1.0, rel=0.03)  # unit white noise reads 1

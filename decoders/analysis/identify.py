@@ -90,9 +90,21 @@ class ChannelLook:
     #: frequency of the strongest line in the channel's spectrum (Hz; the tooth frequency of
     #: a crank signal), 0 when there is none
     line_hz: float = 0.0
+    #: the edges the chosen front end (built-in Hall, with :attr:`frontend_options`) found in
+    #: the whole probe, and the probe's length in samples: a decode need not find them again
+    probe_edges: Edges | None = field(default=None, compare=False, repr=False)
+    probe_samples: int = 0
 
 
 def _sharpness(probe: np.ndarray, edges: Edges, sample_rate: float) -> float:
+    """Median share of each flank's step covered within the sharpness span: the largest
+    change over ``2h`` samples (``h`` = half the span) near the flank, over its step height.
+
+    >>> x = np.r_[np.zeros(50), np.ones(50)]
+    >>> fs = 200_000.0
+    >>> _sharpness(x, Edges(np.array([50 / fs]), np.array([1]), np.array([1.0])), fs)
+    1.0
+    """
     h = max(1, round(SHARP_SPAN_S * sample_rate / 2))
     if len(edges) == 0 or len(probe) <= 2 * h:
         return float("nan")
@@ -100,7 +112,12 @@ def _sharpness(probe: np.ndarray, edges: Edges, sample_rate: float) -> float:
     pos = np.rint(edges.times * sample_rate).astype(int) - h
     lo = np.clip(pos - 3 * h - 2, 0, len(d) - 1)
     hi = np.clip(pos + 3 * h + 3, 1, len(d))
-    vals = np.array([d[a:b].max() if b > a else 0.0 for a, b in zip(lo, hi, strict=True)])
+    # the largest of d[lo:hi] for every flank in one call: reduceat over the pairs (lo, hi)
+    # (what lies between hi and the next lo is reduced too, and dropped); an empty stretch
+    # counts 0
+    ends = np.append(d, 0.0)  # hi may be len(d)
+    top = np.maximum.reduceat(ends, np.stack((lo, hi), axis=1).ravel())[::2]
+    vals = np.where(hi > lo, top, 0.0)
     return float(np.median(vals / edges.strength))
 
 
@@ -158,8 +175,11 @@ def look_at_channel(
     else:
         kind, conf, why = hint, 1.0, "sensor kind given by the user"
     if kind == "hall":
-        fopts = opts
+        fopts, found = opts, edges
     else:
-        fopts = VrFrontEnd.calibrate(probe, sample_rate, levels)
+        fopts, found = VrFrontEnd.calibrate(probe, sample_rate, levels), None
     line_hz, height = strongest_line(probe, sample_rate)
-    return ChannelLook(kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0)
+    return ChannelLook(
+        kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0, found,
+        len(probe),
+    )

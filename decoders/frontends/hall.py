@@ -90,8 +90,6 @@ class HallFrontEnd(SampleFeed):
         )[None, :]
         #: the reach is every sample 1..persist (then the samples are taken as rows)
         self._reach_run = bool(np.array_equal(self._reach[0], np.arange(1, self.persist + 1)))
-        #: sample offsets of the level windows before and after a flank
-        self._plateau_offsets = np.arange(self.plateau)[None, :]
         #: flanks waiting to be timed, per block: first sample of the run, run length - 1,
         #: direction, step height, midpoint level, [its stretch as recorded (, cleaned)]
         self._pend: list[tuple[np.ndarray, ...]] = []
@@ -112,6 +110,7 @@ class HallFrontEnd(SampleFeed):
         self._ints = False
         self._thr = self.threshold
         self._thr_steps: float = self.threshold
+        self._dense = False  # whether the last search found steps in most stretches
 
     @classmethod
     def calibrate(
@@ -222,7 +221,9 @@ class HallFrontEnd(SampleFeed):
     def _find(self, raw: np.ndarray, final: bool, n: int) -> None:
         W, w, half = self.window, self.plateau, self._half
         buf = despike(raw, self.despike)
-        s, e, sign = _steps(buf, W, self._thr_steps)
+        s, e, sign = _steps(buf, W, self._thr_steps, dense=self._dense)
+        # a crank's flanks come several to a stretch: its next search goes straight to them
+        self._dense = len(s) * STRETCH > n
         g = self._buf_start
         # a run is complete when the sample after it and the post-flank plateau are here
         P = self.persist
@@ -237,15 +238,14 @@ class HallFrontEnd(SampleFeed):
         if not sel.any():
             return
         s, e, sign = s[sel], e[sel], sign[sel]
-        pre_i = (s - W - w + 1)[:, None] + self._plateau_offsets
-        post_i = (e + 1)[:, None] + self._plateau_offsets
-        level = _median3 if w >= 3 else _mean
-        lo, hi = level(_floats(buf[pre_i])), level(_floats(buf[post_i]))
+        # the first sample of the level windows before and after each flank
+        pre, post = s - W - w + 1, e + 1
+        lo, hi = _plateau_level(buf, pre, w), _plateau_level(buf, post, w)
         step = (hi - lo) * sign
         keep = step > self._thr
         if not keep.all():
             s, e, sign, lo, hi, step = s[keep], e[keep], sign[keep], lo[keep], hi[keep], step[keep]
-            pre_i, post_i = pre_i[keep], post_i[keep]
+            pre, post = pre[keep], post[keep]
             if len(s) == 0:
                 return
         if P > 0:
@@ -258,10 +258,10 @@ class HallFrontEnd(SampleFeed):
             reach = self._reach
             nr = reach.shape[1]
             if self._reach_run:
-                held = self._held(buf, post_i[:, -1] + 1, pre_i[:, 0] - nr, mid0, sign)
+                held = self._held(buf, post + w, pre - nr, mid0, sign)
             else:
-                after = _beyond(buf[post_i[:, -1:] + reach], mid0, sign)
-                before = _beyond(buf[pre_i[:, :1] - reach], mid0, -sign)
+                after = _beyond(buf[(post + w - 1)[:, None] + reach], mid0, sign)
+                before = _beyond(buf[pre[:, None] - reach], mid0, -sign)
                 held = (after / nr >= 0.8) & (before / nr >= 0.8)
             if not held.all():
                 for d in (1, -1):
@@ -269,13 +269,13 @@ class HallFrontEnd(SampleFeed):
                 s, e, sign, lo, hi, step = (
                     s[held], e[held], sign[held], lo[held], hi[held], step[held]
                 )
-                pre_i, post_i = pre_i[held], post_i[held]
+                pre, post = pre[held], post[held]
                 if len(s) == 0:
                     return
         spiky = buf is not raw
         if spiky:
             # levels as recorded, unless a spike sits in them (then the cleaned ones)
-            lo_raw, hi_raw = level(_floats(raw[pre_i])), level(_floats(raw[post_i]))
+            lo_raw, hi_raw = _plateau_level(raw, pre, w), _plateau_level(raw, post, w)
             clean = (np.abs(lo_raw - lo) < 0.1 * step) & (np.abs(hi_raw - hi) < 0.1 * step)
             lo = np.where(clean, lo_raw, lo)
             hi = np.where(clean, hi_raw, hi)
@@ -340,11 +340,10 @@ class HallFrontEnd(SampleFeed):
         ]
         self._pend, self._waiting = [], 0
         # the last crossing of the midpoint inside [s - W, e + 1]
-        inside = np.arange(span)[None, :] <= (width + W + 1)[:, None]
-        k, ok = _last_crossing(stretch[0], inside, mid, sign, W)
+        k, ok = _last_crossing_within(stretch[0], width + W + 1, mid, sign, W)
         pos = (s - W + k) + _linear_at(stretch[0], k, mid)
         if len(stretch) > 1 and not ok.all():
-            k_med, _ = _last_crossing(stretch[1], inside, mid, sign, W)
+            k_med, _ = _last_crossing_within(stretch[1], width + W + 1, mid, sign, W)
             pos_med = (s - W + k_med) + _linear_at(stretch[1], k_med, mid)
             pos = np.where(ok, pos, pos_med)
         pos, sign, step = self._ordered(pos, sign, step)
@@ -370,7 +369,9 @@ STRETCH = 1024
 DENSE_PIECE = 1 << 16
 
 
-def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _steps(
+    x: np.ndarray, W: int, threshold: float, dense: bool = False
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Runs of steps ``|x[i] - x[i - W]| > threshold`` (``_step_runs`` of those differences):
     the index in ``x`` of the first and last sample of each run, and its direction.
 
@@ -378,7 +379,10 @@ def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndar
     within the threshold holds no step (no difference of two samples exceeds their range, and a
     correctly rounded subtraction keeps that order), so only the other stretches are looked at:
     a channel with few flanks (a cam) costs little more than two reductions per sample. Integer
-    codes are subtracted in the narrowest type that cannot wrap around.
+    codes are subtracted in the narrowest type that cannot wrap around. Where steps are dense
+    (a crank: several in every stretch; ``dense`` says the caller expects that, and the
+    stretches are then not looked at first), integer codes are searched by
+    :func:`_steps_binned`.
 
     >>> x = np.r_[np.zeros(5000), np.ones(5000)]
     >>> [a.tolist() for a in _steps(x, 2, 0.5)]
@@ -390,6 +394,8 @@ def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndar
     if n <= W:
         return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
     ints = x.dtype.kind in "iu"
+    if dense and ints and (found := _steps_binned(x, W, threshold)) is not None:
+        return found
     C = STRETCH
     m = n // C
     if threshold < 0 or W > C or m < 4:
@@ -414,6 +420,8 @@ def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndar
         return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
     wide = _difference_type(x, hi.max(), lo.min()) if ints else x.dtype
     if 4 * len(j) > len(active):
+        if ints and (found := _steps_binned(x, W, threshold)) is not None:
+            return found
         return _steps_dense(x, W, threshold, wide)
     tail = len(j) and j[-1] == m  # the shorter last stretch
     j = j[:-1] if tail else j
@@ -438,14 +446,53 @@ def _steps(x: np.ndarray, W: int, threshold: float) -> tuple[np.ndarray, np.ndar
     return _runs(np.concatenate(idx), np.concatenate(up))
 
 
+#: :func:`_steps_binned` gives up (for :func:`_steps_dense`) when more than this share of the
+#: samples are candidates (a level sitting on a bin edge)
+BINNED_SHARE = 1 / 8
+
+
+def _steps_binned(
+    x: np.ndarray, W: int, threshold: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """:func:`_steps` on integer codes with many steps, by bins: with ``B`` the largest power of
+    two not above the threshold, two codes more than the threshold apart lie in different bins
+    of ``B`` codes (``x >> log2(B)``), so only the samples whose bin differs from the one ``W``
+    samples before can start or continue a step; only those few are subtracted and compared
+    (exactly, in 64 bits). One shift and one comparison per sample instead of a subtraction and
+    two comparisons in a wider type. None when the threshold is below one code or too many
+    samples are candidates (then :func:`_steps_dense` is the faster).
+
+    >>> x = np.r_[np.zeros(50, np.int16), np.full(50, 9, np.int16)]
+    >>> [a.tolist() for a in _steps_binned(x, 2, 5)]
+    [[50], [51], [1]]
+    """
+    if not threshold >= 1 or len(x) <= W:
+        return None
+    # 2**shift <= threshold, and less than the codes' own range
+    shift = min(math.floor(min(threshold, 2.0**62)).bit_length(), 8 * x.dtype.itemsize) - 1
+    bins = np.right_shift(x, shift)
+    moved = bins[W:] != bins[:-W]
+    if np.count_nonzero(moved) > BINNED_SHARE * len(moved):
+        return None
+    at = np.flatnonzero(moved)
+    d = np.subtract(x[at + W], x[at], dtype=np.int64)
+    k = np.flatnonzero(np.abs(d) > threshold)
+    return _runs(at[k] + W, d[k] > 0)
+
+
 def _difference_type(x: np.ndarray, high: Any, low: Any) -> np.dtype:
     """The type in which samples of ``x`` between ``low`` and ``high`` are subtracted without
-    wrapping around: their own, or a wider integer."""
+    wrapping around: their own, or a wider integer (a signed one: a difference of unsigned
+    codes may be negative).
+
+    >>> [str(_difference_type(np.zeros(1, t), 200, 10)) for t in (np.int16, np.uint8)]
+    ['int16', 'int32']
+    """
     if x.dtype.kind not in "iu":
         return x.dtype
     span = int(high) - int(low)
     for t in (x.dtype, np.dtype(np.int32), np.dtype(np.int64)):
-        if np.can_cast(x.dtype, t) and span <= np.iinfo(t).max:
+        if t.kind == "i" and np.can_cast(x.dtype, t) and span <= np.iinfo(t).max:
             return t
     return np.dtype(np.int64)
 
@@ -598,6 +645,23 @@ def _mean(x: np.ndarray) -> np.ndarray:
     return x.mean(axis=1)
 
 
+def _plateau_level(x: np.ndarray, first: np.ndarray, w: int) -> np.ndarray:
+    """The level of the ``w`` samples of ``x`` from each of ``first`` on, as float64: the
+    median of the first three (``w >= 3``; picked among the samples as they are, then made a
+    float, which is exact) or the mean of all ``w``. The value ``_median3`` / ``_mean`` give
+    on the gathered rows, from three (or ``w``) gathers of one sample per flank.
+
+    >>> _plateau_level(np.array([5, 1, 3, 9, 9], np.int16), np.array([0, 2]), 3).tolist()
+    [3.0, 9.0]
+    >>> _plateau_level(np.array([1.0, 2.0, 4.0]), np.array([0, 1]), 2).tolist()
+    [1.5, 3.0]
+    """
+    if w >= 3:
+        a, b, c = x[first], x[first + 1], x[first + 2]
+        return _floats(np.maximum(np.minimum(a, b), np.minimum(np.maximum(a, b), c)))
+    return _mean(_floats(x[first[:, None] + np.arange(w)]))
+
+
 def _last_crossing(
     stretch: np.ndarray,
     inside: np.ndarray,
@@ -628,6 +692,59 @@ def _last_crossing(
     has = cross.any(axis=1)
     span = stretch.shape[1]
     last = span - 2 - np.argmax(cross[:, ::-1], axis=1)
+    return np.where(has, last, W - 1), has
+
+
+#: columns :func:`_last_crossing_within` handles as the bits of one number (exact in float64)
+BIT_COLUMNS = 48
+#: times 8 bytes of 0 or 1 (byte i the lowest-but-i): their bits, byte i at bit 56 + i
+# source: the multiply-and-shift bit gather of H. S. Warren, "Hacker's Delight" (2nd ed.,
+# 2012), section 7-9; each byte lands on its own bit, and no two products overlap
+_GATHER_BITS = np.uint64(0x0102040810204080)
+
+
+def _last_crossing_within(
+    stretch: np.ndarray, limit: np.ndarray, mid: np.ndarray, sign: np.ndarray, W: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_last_crossing` with the search region of each row given as its last column
+    (``limit``: columns 0..limit are inside). Rows of up to :data:`BIT_COLUMNS` samples are
+    turned into numbers, a bit per sample on the far side of the midpoint, and the crossings
+    found on those numbers: a few passes over the flanks instead of a few over every sample
+    of every stretch, and exactly what the definition gives.
+
+    >>> k, has = _last_crossing_within(np.array([[0.0, 0, 1, 0, 1, 1]]), np.array([5]),
+    ...                                np.array([0.5]), np.array([1]), 2)
+    >>> k.tolist(), has.tolist()
+    ([3], [True])
+    """
+    n, span = stretch.shape
+    if span > BIT_COLUMNS or n == 0:
+        inside = np.arange(span)[None, :] <= limit[:, None]
+        return _last_crossing(stretch, inside, mid, sign, W)
+    width = -(-span // 8) * 8
+    above = np.zeros((n, width), dtype=bool)
+    if stretch.dtype.kind in "iu":
+        # as in _last_crossing: above ceil(mid) - 1 for a rising flank; for a falling one the
+        # bits are turned over below
+        up = sign > 0
+        t = np.where(up, np.ceil(mid) - 1, np.floor(mid))
+        info = np.iinfo(stretch.dtype)
+        kind = stretch.dtype if info.min <= t.min() and t.max() <= info.max else np.int64
+        np.greater(stretch, t.astype(kind)[:, None], out=above[:, :span])
+    else:
+        up = None
+        np.greater_equal((stretch - mid[:, None]) * sign[:, None], 0, out=above[:, :span])
+    words = above.view("<u8")
+    bits = (words[:, 0] * _GATHER_BITS) >> np.uint64(56)
+    for q in range(1, width // 8):
+        bits |= ((words[:, q] * _GATHER_BITS) >> np.uint64(56)) << np.uint64(8 * q)
+    if up is not None:
+        bits ^= np.where(up, np.uint64(0), np.uint64((1 << span) - 1))
+    # bit j: below the midpoint at column j, at or beyond it at j + 1, and j + 1 inside
+    inside = (np.uint64(1) << (limit.astype(np.uint64))) - np.uint64(1)
+    cross = ~bits & (bits >> np.uint64(1)) & inside
+    has = cross != 0
+    last = np.frexp(cross.astype(np.float64))[1] - 1  # the highest bit set
     return np.where(has, last, W - 1), has
 
 

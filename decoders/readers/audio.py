@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 import os
 import struct
+import sys
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -224,6 +225,23 @@ def _plain_pcm16(wav: WavHeader, info: CaptureInfo) -> bool:
     )
 
 
+def _split_pairs(raw: np.ndarray) -> np.ndarray:
+    """Two channels of 16-bit codes, interleaved (frames, 2), as two contiguous rows: each
+    frame read as one 32-bit number whose halves are the two codes (the low half the first
+    channel on a little-endian machine), cut apart by a truncating copy and a shift -- faster
+    than numpy's transposing copy of 2-byte items.
+
+    >>> _split_pairs(np.array([[1, -2], [-3, 4]], np.int16)).tolist()
+    [[1, -3], [-2, 4]]
+    """
+    pairs = raw.view(np.uint32).reshape(-1)
+    low, high = (0, 1) if sys.byteorder == "little" else (1, 0)
+    out = np.empty((2, len(pairs)), dtype=np.int16)
+    np.copyto(out[low].view(np.uint16), pairs, casting="unsafe")
+    np.copyto(out[high].view(np.uint16), pairs >> 16, casting="unsafe")
+    return out
+
+
 class AudioSource(SourceBase):
     """An open sound file (see :func:`toothcomb.decoders.readers.open_capture`)."""
 
@@ -316,6 +334,8 @@ class AudioSource(SourceBase):
         """Integer samples (frames, channels) as :meth:`_read` gives them: the codes, each
         channel contiguous, or float64 values."""
         if codes:
+            if raw.shape[1] == 2 and raw.dtype == np.int16 and raw.flags.c_contiguous:
+                return _split_pairs(raw).T
             return np.ascontiguousarray(raw.T).T
         out = np.empty((raw.shape[1], raw.shape[0]))
         np.multiply(raw.T, INTEGER_READ[self.info.subtype][1], out=out)
@@ -359,13 +379,23 @@ class AudioSource(SourceBase):
         (frames, channels): samples from anywhere in the file without reading all of it."""
         wav = self._raw
         if wav is not None:
+            # every window's codes into one array, made floats in one pass, given back as views
+            starts = [int(s) for s in starts]
+            sizes = [max(0, min(int(length), self._frames - s)) for s in starts]
+            raw = np.empty((sum(sizes), self.info.n_channels), dtype="<i2")
+            got = []
+            at = 0
             with open(self._path, "rb") as f:
-                for s in starts:
-                    n = max(0, min(int(length), self._frames - int(s)))
-                    raw = np.empty((n, self.info.n_channels), dtype="<i2")
-                    f.seek(wav.data_offset + int(s) * wav.block_align)
-                    got = (f.readinto(memoryview(raw).cast("B")) or 0) if n else 0
-                    yield self._arrange(raw[: got // wav.block_align].astype(np.int16), False)
+                for s, n in zip(starts, sizes, strict=True):
+                    f.seek(wav.data_offset + s * wav.block_align)
+                    part = raw[at : at + n]
+                    got.append((f.readinto(memoryview(part).cast("B")) or 0) if n else 0)
+                    at += n
+            values = self._arrange(raw.astype(np.int16, copy=False), False)
+            at = 0
+            for n, g in zip(sizes, got, strict=True):
+                yield values[at : at + g // wav.block_align]
+                at += n
             return
         with sf.SoundFile(self._path) as handle:
             for s in starts:
