@@ -17,6 +17,7 @@ spans M + 1 pitches (60-2: 6 deg pitch, 18 deg across the gap) -- see e.g. Rober
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 import re
@@ -529,19 +530,7 @@ class ToothTracker:
         self._i = i - drop
         track = out.track(spec.pitch_deg, self)
         if np.any(self._offset) and len(track):
-            track = ToothTrack(
-                times=track.times,
-                angles=track.angles + self._offset[track.tooth],
-                run=track.run,
-                tooth=track.tooth,
-                pitches=track.pitches,
-                reference_times=track.reference_times,
-                pitch_deg=track.pitch_deg,
-                extra=track.extra,
-                missing=track.missing,
-                sync_losses=track.sync_losses,
-                findings=track.findings,
-            )
+            track = dataclasses.replace(track, angles=track.angles + self._offset[track.tooth])
         return track
 
     def _sync(self, t: np.ndarray, i: int, n: int, final: bool, out: _Out) -> tuple[int, bool]:
