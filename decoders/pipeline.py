@@ -41,8 +41,8 @@ from .analysis.identify import ChannelLook, look_at_channel
 from .analysis.jitter import CrankJitter, tooth_offsets
 from .analysis.phaser import with_phaser
 from .analysis.timeline import CamLocator
+from .edgepass import EdgeBatch, EdgePass, Received
 from .errors import DecodeError, SignalError, UsageError
-from .frontends.hall import HallFrontEnd
 from .levels import CLIP_SHARE, FiniteWatch, check_finite, estimate_levels
 from .model import CaptureInfo, CaptureSource, ChannelLevels, Edges
 from .options import DecodeOptions
@@ -513,43 +513,6 @@ def _pick_crank(
     )
 
 
-def _stream_prefix(
-    source: CaptureSource,
-    channels: list[int],
-    looks: dict[int, ChannelLook],
-    levels: tuple[ChannelLevels, ...],
-    seconds: float,
-    block_size: int,
-) -> tuple[dict[int, Edges], bool]:
-    """Edges of the first ``seconds`` of each channel; also whether that was the whole capture."""
-    fs = source.info.sample_rate
-    stop = int(min(source.info.n_samples, max(1.0, seconds * fs)))
-    found = {c: looks[c].probe_edges for c in channels if _probe_edges_fit(looks[c], stop)}
-    fes = {c: _frontend(looks[c], fs, levels[c]) for c in channels if c not in found}
-    parts: dict[int, list[Edges]] = {c: [] for c in fes}
-    for block in source.blocks(block_size) if fes else ():
-        data = block.data[: max(0, stop - block.start)]
-        for c, fe in fes.items():
-            parts[c].append(fe.process(data[:, c], block.start))
-        if block.start + len(data) >= stop:
-            break
-    for c, fe in fes.items():
-        parts[c].append(fe.finish())
-    edges = {c: Edges.concat(parts[c]) if c in parts else found[c] for c in channels}
-    return edges, stop >= source.info.n_samples
-
-
-def _probe_edges_fit(look: ChannelLook, stop: int) -> bool:
-    """Whether the edges found while the channel was looked at are those of its first ``stop``
-    samples, from the front end a decode uses (the built-in Hall one: the same edges, whatever
-    the blocks)."""
-    return (
-        look.probe_edges is not None
-        and look.probe_samples == stop
-        and plugin(FRONTENDS, look.kind) is HallFrontEnd
-    )
-
-
 def _frontend(look: ChannelLook, sample_rate: float, levels: ChannelLevels):
     return plugin(FRONTENDS, look.kind)(sample_rate, levels, **look.frontend_options)
 
@@ -574,6 +537,10 @@ class _Clipped:
 
     def finish(self) -> Edges:
         return self.inner.finish()
+
+    def release(self) -> Edges:
+        release = getattr(self.inner, "release", None)
+        return release() if release is not None else Edges.empty()
 
 
 @dataclass
@@ -667,11 +634,28 @@ def decode_capture(
                 + ")"
             )
 
+        # -- one pass of every live channel through its front end, from here to the end --
+        fronts: dict[int, Any] = {}
+        for c in live:
+            if c not in valves:
+                fronts[c] = _frontend(looks[c], fs, levels[c])
+            elif looks[c].kind == "hall":
+                fronts[c] = _Clipped(_frontend(looks[c], fs, levels[c]), levels[c])
+        pwm_views = {
+            c: _Clipped(_frontend(as_pwm[c], fs, levels[c]), levels[c]) for c in as_pwm if c in live
+        }
+        total = info.n_samples
+        edge_pass = EdgePass(src, fronts, pwm_views, opts.block_size, watch)
+        got = Received(edge_pass, (lambda s: progress("edges", s, total)) if progress else None)
+
         # -- the first seconds: which channel is the crank, which way, which wheel --
         choices: dict[str, str] = {}
         seconds = PROBE_SECONDS
         while True:
-            head, whole = _stream_prefix(src, live, looks, levels, seconds, opts.block_size)
+            stop = int(min(total, max(1.0, seconds * fs)))
+            whole = stop >= total
+            got.until(math.inf if whole else stop / fs)
+            head = {c: got.edges(c, None if whole else stop / fs) for c in fronts}
             try:
                 if crank is None:
                     c_pick, why = _pick_crank(head, looks, info, wheel)
@@ -696,7 +680,8 @@ def decode_capture(
                     "info",
                     "crank-channel",
                     f"the crank signal is on channel {info.channels[crank]!r}, not the first "
-                    "channel (inputs swapped or in another order); found from its tooth pattern",
+                    "channel (inputs swapped or in another order); found from its tooth "
+                    "pattern",
                 )
             )
         choices["wheel"] = f"{plan.spec.name}: {plan.how}"
@@ -706,6 +691,8 @@ def decode_capture(
         pwm = {v: pwm_plugin() for v in valves if v in live and looks[v].kind == "hall"}
         # cam channels that may turn out to be a valve command (told apart once decoded)
         maybe_pwm = {c: pwm_plugin() for c in cams if c in as_pwm}
+        followed = {c for c in [crank, *cams, *pwm] if c in live}
+        edge_pass.keep(followed | set(maybe_pwm))
         state: dict[int, _CamState] = {c: _CamState() for c in cams}
         for c in cams:
             if looks[c].kind == "vr":
@@ -717,21 +704,16 @@ def decode_capture(
                         Finding(
                             "warning",
                             "vr-reversed",
-                            f"cam VR leads on {info.channels[c]!r} are reversed: tooth centres "
-                            "cross zero rising; angles are measured on the correct crossings",
+                            f"cam VR leads on {info.channels[c]!r} are reversed: tooth "
+                            "centres cross zero rising; angles are measured on the correct "
+                            "crossings",
                         )
                     )
         offsets, offset_findings = _tooth_offsets(head[crank], plan, info.channels[crank])
         offset_findings += _clipped_teeth(clip_marks, head[crank], plan, info)
         del head
 
-        # -- the whole capture, block by block --
-        frontends = {
-            c: _frontend(looks[c], fs, levels[c]) for c in [crank, *cams, *pwm] if c in live
-        }
-        for c in pwm:
-            frontends[c] = _Clipped(frontends[c], levels[c])
-        pwm_fe = {c: _Clipped(_frontend(as_pwm[c], fs, levels[c]), levels[c]) for c in maybe_pwm}
+        # -- the whole capture: the edges, block by block, as the front ends find them --
         tracker = make_tracker(plan.spec, offsets)
         locator = CamLocator(max_pitches=plan.spec.max_step)
         jitter = CrankJitter(plan.spec.pitch_deg)
@@ -759,7 +741,8 @@ def decode_capture(
         # the per-edge stages take the edges of several blocks at once: what they find does
         # not depend on how the edges are cut, and a call per block would cost more than the
         # block's samples do
-        waiting: dict[int, list[Edges]] = {c: [] for c in frontends}
+        waiting: dict[int, list[Edges]] = {c: [] for c in followed}
+        settled = math.inf
 
         def hand_over() -> None:
             edges = {c: Edges.concat(parts) for c, parts in waiting.items()}
@@ -768,47 +751,42 @@ def decode_capture(
             ce = edges[crank]
             teeth = tracker.feed(ce.times[ce.direction == plan.direction])
             take(edges, teeth)
-            settled = [getattr(frontends[c], "settled_s", 0.0) for c in cams if c in frontends]
-            locator.forget_before(min(settled, default=math.inf))
+            locator.forget_before(settled)
 
-        total = info.n_samples
         held = 0
-        # integer PCM: the front ends find the edges on the codes as stored (the same edges, to
-        # the last bit, without a float made of every sample first)
-        scale = getattr(src, "code_scale", None)
-        by_codes = bool(scale) and all(hasattr(fe, "process_codes") for fe in frontends.values())
-        stream = src.code_blocks(opts.block_size) if by_codes else src.blocks(opts.block_size)
-        for block in stream:
-            watch.check(block.data)
-            for c, fe in frontends.items():
-                col = block.data[:, c]
-                e = fe.process_codes(col, block.start, scale) if by_codes else fe.process(
-                    col, block.start
+
+        def handle(batch: EdgeBatch) -> None:
+            nonlocal held, settled
+            for c in followed:
+                e = batch.edges.get(c)
+                if e is not None and len(e):
+                    waiting[c].append(e)
+                    held += len(e)
+            for c, e in batch.extra.items():
+                if c in maybe_pwm:
+                    maybe_pwm[c].add(e)
+            if not batch.final:
+                settled = min(
+                    (batch.settled.get(c, 0.0) for c in cams if c in followed),
+                    default=math.inf,
                 )
-                waiting[c].append(e)
-                held += len(e)
-            for c, fe in pwm_fe.items():
-                col = block.data[:, c] * scale if by_codes else block.data[:, c]
-                maybe_pwm[c].add(fe.process(col, block.start))
             if held >= EDGES_PER_HANDOVER:
                 hand_over()
                 held = 0
-            if progress is not None:
-                progress("edges", block.stop, total)
+
+        fresh = got.stop
+        for batch in got:
+            handle(batch)
+            if progress is not None and batch.stop > fresh:
+                progress("edges", batch.stop, total)
         hand_over()
-        edges = {c: fe.finish() for c, fe in frontends.items()}
-        for c, fe in pwm_fe.items():
-            maybe_pwm[c].add(fe.finish())
-        ce = edges[crank]
-        teeth = tracker.feed(ce.times[ce.direction == plan.direction])
-        take(edges, teeth)
         take({}, tracker.finish())
         jitter.flush()
         for c, ev in locator.finish().items():
             state[c].events.append(ev)
         # steps on the crank channel that did not hold: a short pulse gives at most one of
         # each direction
-        rejected = getattr(frontends[crank], "rejected", {})
+        rejected = getattr(fronts[crank], "rejected", {})
         pulses = max(rejected.values(), default=0)
         if pulses:
             stats.extra += pulses

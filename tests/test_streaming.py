@@ -639,32 +639,70 @@ def test_channel_sharpness_is_the_flank_by_flank_definition():
         assert _sharpness(probe, e, fs) == by_hand(probe, e, fs), trial
 
 
-def test_the_first_seconds_take_the_hall_edges_found_while_looking(tmp_path, monkeypatch):
-    """A Hall channel's edges in the probe are found once, while the channel is looked at; the
-    first seconds reuse them only when they cover the same samples. They must be the edges the
-    front end finds block by block, and a decode must be the same without the reuse."""
-    from dataclasses import replace
+def test_every_sample_goes_through_a_front_end_once(tmp_path, monkeypatch):
+    """The crank and its wheel are identified from the first seconds' edges, and those are the
+    first edges of the one pass that the decode then follows to the end: no sample is searched
+    twice. Each front end the decode makes must be fed every sample of its channel exactly once,
+    in order."""
+    path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=9.0), "wav")
+    fed: list[list[tuple[int, int]]] = []
+    made = pipeline._frontend
 
+    def counting(look, fs, lv):
+        fe = made(look, fs, lv)
+        seen: list[tuple[int, int]] = []
+        fed.append(seen)
+        for name in ("process", "process_codes"):
+            inner = getattr(fe, name)
+
+            def spy(x, start, *rest, inner=inner):
+                seen.append((start, len(x)))
+                return inner(x, start, *rest)
+
+            setattr(fe, name, spy)
+        return fe
+
+    monkeypatch.setattr(pipeline, "_frontend", counting)
+    r = decode_capture(str(path), DecodeOptions(block_size=4096))
+    n = r.capture.n_samples
+    assert len(fed) == 2  # crank and cam
+    for seen in fed:
+        starts = [s for s, _ in seen]
+        assert starts == sorted(starts) and starts[0] == 0
+        assert sum(k for _, k in seen) == n
+        assert all(a + k == b for (a, k), (b, _) in itertools.pairwise(seen))
+
+
+def test_the_first_seconds_are_the_start_of_the_whole_pass(tmp_path):
+    """The edges the crank is identified from are those a front end finds in the whole capture
+    before the first seconds end, whatever the blocks."""
     from toothcomb.decoders.analysis.identify import look_at_channel
+    from toothcomb.decoders.edgepass import EdgePass, Received
 
-    path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=1.5), "wav")
+    path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=6.0), "wav")
     with open_capture(str(path)) as src:
         fs = src.info.sample_rate
         lv = estimate_levels(src, 4096)
         probe = pipeline.read_probe(src, src.info.n_samples, 4096)
-        cam = look_at_channel(probe[:, 1], fs, lv[1])
-        assert cam.kind == "hall" and cam.probe_samples == src.info.n_samples
-        assert pipeline._probe_edges_fit(cam, src.info.n_samples)
-        assert not pipeline._probe_edges_fit(cam, src.info.n_samples - 1)
-        looks = {1: replace(cam, probe_edges=None)}  # found again, block by block
-        again, whole = pipeline._stream_prefix(src, [1], looks, lv, 4.0, 999)
-    assert whole and len(cam.probe_edges) >= 4  # source: the simulated cam turns 6 times
-    np.testing.assert_array_equal(again[1].times, cam.probe_edges.times)
-    np.testing.assert_array_equal(again[1].direction, cam.probe_edges.direction)
-    np.testing.assert_array_equal(again[1].strength, cam.probe_edges.strength)
-    reused = _decode_json(path, block_size=4096)
-    monkeypatch.setattr(pipeline, "_probe_edges_fit", lambda look, stop: False)
-    assert _decode_json(path, block_size=4096) == reused
+        looks = {c: look_at_channel(probe[:, c], fs, lv[c]) for c in (0, 1)}
+        whole = {}
+        for c in (0, 1):  # the definition: one front end over the whole capture, in one piece
+            fe = pipeline._frontend(looks[c], fs, lv[c])
+            x = np.concatenate([b.data[:, c] for b in src.blocks(1 << 20)])
+            whole[c] = Edges.concat([fe.process(x, 0), fe.finish()])
+        for block in (999, 4096):
+            fronts = {c: pipeline._frontend(looks[c], fs, lv[c]) for c in (0, 1)}
+            edge_pass = EdgePass(src, fronts, {}, block, FiniteWatch(src, block))
+            got = Received(edge_pass, None)
+            stop = int(2.0 * fs)
+            got.until(stop / fs)
+            assert not got.done  # the first seconds come before the pass ends
+            for c in (0, 1):
+                head = got.edges(c, stop / fs)
+                want = whole[c].select(whole[c].times < stop / fs)
+                assert len(want) > 10
+                np.testing.assert_array_equal(head.times, want.times)
+                np.testing.assert_array_equal(head.direction, want.direction)
 
 
 def test_two_channel_codes_are_split_as_numpy_transposes_them():

@@ -90,10 +90,6 @@ class ChannelLook:
     #: frequency of the strongest line in the channel's spectrum (Hz; the tooth frequency of
     #: a crank signal), 0 when there is none
     line_hz: float = 0.0
-    #: the edges the chosen front end (built-in Hall, with :attr:`frontend_options`) found in
-    #: the whole probe, and the probe's length in samples: a decode need not find them again
-    probe_edges: Edges | None = field(default=None, compare=False, repr=False)
-    probe_samples: int = 0
 
 
 def _sharpness(probe: np.ndarray, edges: Edges, sample_rate: float) -> float:
@@ -174,12 +170,8 @@ def look_at_channel(
             )
     else:
         kind, conf, why = hint, 1.0, "sensor kind given by the user"
-    if kind == "hall":
-        fopts, found = opts, edges
-    else:
-        fopts, found = VrFrontEnd.calibrate(probe, sample_rate, levels), None
+    fopts = opts if kind == "hall" else VrFrontEnd.calibrate(probe, sample_rate, levels)
     line_hz, height = strongest_line(probe, sample_rate)
     return ChannelLook(
-        kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0, found,
-        len(probe),
+        kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0
     )

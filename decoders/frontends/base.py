@@ -109,6 +109,19 @@ class SampleFeed:
         last = self._finish()
         return last if len(held) == 0 else Edges.concat([held, last])
 
+    def release(self) -> Edges:
+        """The edges that can be timed from the samples fed so far, now, rather than once the
+        gathered samples or the work waiting for a batch fill up (what the rest of the capture
+        then gives is unchanged: the work is timed in batches of any size). ``settled_s``, where
+        a front end has it, tells how far the edges given are complete."""
+        held = self._flush()
+        more = self._release()
+        return more if len(held) == 0 else Edges.concat([held, more])
+
+    def _release(self) -> Edges:
+        """Time the work waiting for a batch (none by default)."""
+        return NO_EDGES
+
     def _feed(self, x: np.ndarray, start: int, unit: float) -> Edges:
         fed = ("i" if x.dtype.kind in "iu" else "f", unit)
         if self._fed is None:

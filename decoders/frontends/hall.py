@@ -199,6 +199,9 @@ class HallFrontEnd(SampleFeed):
             first = min(first, int(self._pend[0][0][0]) - self.window)
         return first / self.sample_rate
 
+    def _release(self) -> Edges:
+        return self._time_pending()
+
     def _finish(self) -> Edges:
         out = self._scan(self._buf, final=True)
         self._buf = np.empty(0)

@@ -161,6 +161,9 @@ class VrFrontEnd(SampleFeed):
             pending = min(pending, int(self._p_k[0][0]))
         return pending / self.sample_rate
 
+    def _release(self) -> Edges:
+        return self._edges(*self._close_pending())
+
     def _finish(self) -> Edges:
         if len(self._tail):
             self._scan(self._tail, final=True)
