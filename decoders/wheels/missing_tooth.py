@@ -18,6 +18,7 @@ spans M + 1 pitches (60-2: 6 deg pitch, 18 deg across the gap) -- see e.g. Rober
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import math
 import re
@@ -310,6 +311,18 @@ def off_grid(times: np.ndarray) -> np.ndarray:
 
 
 def identify(times: np.ndarray, clean: bool = True) -> WheelGuess | None:
+    """:func:`identify_wheel`, remembered for the last few event series: a decode asks it about
+    the same first seconds while it picks the crank channel, its direction and its wheel."""
+    times = np.ascontiguousarray(times, dtype=float)
+    return _identify_cached(times.tobytes(), clean)
+
+
+@functools.lru_cache(maxsize=32)
+def _identify_cached(raw: bytes, clean: bool) -> WheelGuess | None:
+    return identify_wheel(np.frombuffer(raw, dtype=float), clean)
+
+
+def identify_wheel(times: np.ndarray, clean: bool = True) -> WheelGuess | None:
     """Identify N and M from event times of one direction (tooth centres or leading flanks).
 
     Events off the pitch grid (runts) are set aside first. Intervals that span whole extra
