@@ -352,3 +352,92 @@ def test_units_line_for_time_and_all_channels(tmp_path: Path) -> None:
     info, data = _read(_write(tmp_path, "u.csv", text))
     assert info.units == ("V", "V", "V")
     assert data.shape == (50, 3)
+
+
+# ----------------------------------------------------------------------------- the spool
+
+
+def _long_csv(tmp_path: Path, n: int = 40_000) -> tuple[Path, np.ndarray]:
+    rows, values = _table(n, 50_000.0)
+    text = "Time (s),CRK (V),CAM (V)\n" + "\n".join(",".join(r) for r in rows) + "\n"
+    return _write(tmp_path, "long.csv", text), values
+
+
+def test_the_spool_gives_what_the_text_says(tmp_path: Path, monkeypatch) -> None:
+    """The values parsed once at open are read back from the spool: blocks and windows anywhere
+    must be the numbers numpy's own text loader reads, and dropping the spool (no room in the
+    temporary folder, at once or halfway) must change nothing but the speed."""
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 64 * 1024)  # many chunks
+    monkeypatch.setattr(scopecsv, "SPOOL_READ_BYTES", 50_000)
+    path, _ = _long_csv(tmp_path)
+    # source: numpy.loadtxt reads the same text (header line skipped, time column dropped)
+    want = np.loadtxt(path, delimiter=",", skiprows=1, usecols=(1, 2))
+    starts = [0, 5, 12_345, 39_990, 40_000]
+    with open_capture(path) as src:
+        assert src._spool is not None
+        got = np.concatenate([b.data for b in src.blocks(999)])
+        windows = list(src.read_windows(starts, 64))
+    assert np.array_equal(got, want)
+    for s, w in zip(starts, windows, strict=True):
+        assert np.array_equal(w, want[s : s + 64])
+    assert [len(w) for w in windows] == [64, 64, 64, 10, 0]
+
+    def no_room(self, values):  # the temporary folder fills up after the second chunk
+        if self.rows > 2000:
+            self.close()
+            return False
+        np.ascontiguousarray(values, dtype="<f8").tofile(self._file)
+        self.rows += values.shape[0]
+        return True
+
+    def no_folder(prefix=""):
+        raise OSError(28, "No space left on device")
+
+    for fault in ("halfway", "at once"):
+        with monkeypatch.context() as m:
+            if fault == "halfway":
+                m.setattr(scopecsv._Spool, "write", no_room)
+            else:
+                m.setattr(scopecsv.tempfile, "TemporaryFile", no_folder)
+            with open_capture(path) as src:
+                assert src._spool is None and not hasattr(src, "read_windows")
+                again = np.concatenate([b.data for b in src.blocks(999)])
+        assert np.array_equal(again, want), fault
+
+
+def test_a_decode_parses_the_text_once_and_leaves_no_file(tmp_path: Path, monkeypatch) -> None:
+    """The spool is an unnamed temporary file: the text is parsed by the opening check only,
+    and nothing is left in the temporary folder, whether the decode ends or fails."""
+    import tempfile
+
+    from conftest import cam_errors, make_capture
+    from toothcomb.decoders.options import DecodeOptions
+    from toothcomb.decoders.pipeline import decode_capture
+    from toothcomb.decoders.simulate import Instrument, preset
+
+    sc = preset("idle-60-2-vr-soundcard", duration_s=1.0)
+    sc = sc.replace(instrument=Instrument(kind="scope", sample_rate=100_000.0, bits=8,
+                                          range_v=(-1.0, 1.0)))
+    path, truth = make_capture(tmp_path, sc, "csv")
+    scratch = tmp_path / "tmp"
+    scratch.mkdir()
+    monkeypatch.setenv("TMPDIR", str(scratch))
+    monkeypatch.setattr(tempfile, "tempdir", None)  # TMPDIR is read again
+    chunks = []
+    parse = scopecsv._parse
+
+    def counting(chunk, *a, **k):
+        chunks.append(chunk.offset)
+        return parse(chunk, *a, **k)
+
+    monkeypatch.setattr(scopecsv, "_parse", counting)
+    r = decode_capture(str(path), DecodeOptions())
+    assert len(chunks) == len(set(chunks))  # every chunk of text parsed once
+    assert r.crank.wheel == "60-2"
+    # source: the simulator's own truth (edge angles it placed the cam at)
+    assert max(cam_errors(r, truth).values()) < 0.5
+    assert list(scratch.iterdir()) == []
+    path.write_bytes(path.read_bytes()[:-5000] + b"1,2,x\n")  # a bad row near the end
+    with pytest.raises(CaptureError):
+        decode_capture(str(path), DecodeOptions())
+    assert list(scratch.iterdir()) == []

@@ -21,8 +21,12 @@ What the reader works out from the file itself:
 A time column must tick at a fixed interval: a step that differs from the fitted interval by more
 than 1 % of it (allowing for the digits the stamps were printed with) is an error naming the line.
 
-``open()`` parses the file once to check every row and fit the clock; ``blocks()`` parses it again,
-chunk by chunk with numpy's C parser, so memory stays bounded whatever the file size.
+``open()`` parses the file once, chunk by chunk with numpy's C parser, to check every row and
+fit the clock; memory stays bounded whatever the file size. The channels' values it parses are
+kept in an anonymous temporary file (the *spool*, float64, removed by the system when it is
+closed or the process ends), so the decode's passes read numbers instead of parsing text again,
+and can read windows anywhere in the capture. Where the spool cannot be written (no room in the
+temporary folder), ``blocks()`` parses the text again instead.
 """
 
 from __future__ import annotations
@@ -31,9 +35,10 @@ import io
 import math
 import os
 import re
+import tempfile
 import warnings
 from collections import Counter
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -77,6 +82,8 @@ HEAD_BYTES = 64 * 1024
 HEAD_BYTES_MAX = 1024 * 1024
 #: bytes of text parsed at a time
 CHUNK_BYTES = 2 * 1024 * 1024
+#: bytes of the spool read at a time
+SPOOL_READ_BYTES = 4 * 1024 * 1024
 #: data rows looked at to sniff a time column and its print resolution
 SNIFF_ROWS = 32
 #: lines looked at to sniff the dialect
@@ -690,14 +697,65 @@ def _line_of_row(path: Path, layout: _Layout, row: int) -> int:
     return layout.data_line + row
 
 
-def _scan(path: Path, layout: _Layout, shown: str, use_clock: bool) -> tuple[int, ClockFit | None]:
-    """The checking pass: parse every row, count them, fit the time column."""
+class _Spool:
+    """The channels' values, parsed once, in an anonymous temporary file (float64, rows of
+    channels). Unnamed, it is gone when closed or when the process ends, however it ends."""
+
+    def __init__(self, n_channels: int) -> None:
+        self.n_channels = n_channels
+        self.rows = 0
+        self._file: Any = tempfile.TemporaryFile(prefix="toothcomb-csv-")
+
+    def write(self, values: np.ndarray) -> bool:
+        """Append rows; False (and the spool dropped) when the temporary folder is full."""
+        if self._file is None:
+            return False
+        try:
+            np.ascontiguousarray(values, dtype="<f8").tofile(self._file)
+        except OSError:
+            self.close()
+            return False
+        self.rows += values.shape[0]
+        return True
+
+    def read(self, row: int, count: int) -> np.ndarray:
+        """Rows ``row`` to ``row + count`` (fewer at the end), float64 (rows, channels)."""
+        count = max(0, min(count, self.rows - row))
+        width = 8 * self.n_channels
+        raw = os.pread(self._file.fileno(), count * width, row * width) if count else b""
+        return np.frombuffer(raw, dtype="<f8").reshape(-1, self.n_channels)
+
+    @property
+    def ok(self) -> bool:
+        return self._file is not None
+
+    def close(self) -> None:
+        if self._file is not None:
+            self._file.close()
+            self._file = None
+
+
+def _new_spool(n_channels: int) -> _Spool | None:
+    try:
+        return _Spool(n_channels)
+    except OSError:
+        return None  # no temporary folder to write to: the text is parsed again instead
+
+
+def _scan(
+    path: Path, layout: _Layout, shown: str, use_clock: bool, spool: _Spool | None = None
+) -> tuple[int, ClockFit | None]:
+    """The checking pass: parse every row, count them, fit the time column; the channels'
+    values go to ``spool``."""
     clock = RegularClock(resolution=layout.resolution) if use_clock else None
     n = 0
     t_first = math.nan
+    cols = layout.channel_cols
     try:
         for chunk in _chunks(path, layout):
             data = _parse(chunk, layout, shown)
+            if spool is not None and spool.ok and data.shape[0]:
+                spool.write(data[:, cols])
             if layout.time_col is not None and data.shape[0]:
                 t = data[:, layout.time_col] * layout.time_scale
                 if n == 0:
@@ -745,17 +803,40 @@ def _clock_error(path: Path, layout: _Layout, shown: str, exc: IrregularClock) -
 class CsvSource(SourceBase):
     """An open text capture (see :func:`toothcomb.decoders.readers.open_capture`)."""
 
-    def __init__(self, path: Path, info: CaptureInfo, layout: _Layout) -> None:
+    def __init__(
+        self, path: Path, info: CaptureInfo, layout: _Layout, spool: _Spool | None = None
+    ) -> None:
         super().__init__(info)
         self._path = path
         self._layout = layout
+        self._spool = spool if spool is not None and spool.ok else None
+        if self._spool is not None:
+            self.read_windows = self._read_windows
+
+    def _read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
+        """``length`` samples from each of ``starts`` (fewer at the end), float64 (samples,
+        channels), from the spool: samples from anywhere without parsing the text again."""
+        self._check_open()
+        assert self._spool is not None
+        for s in starts:
+            yield self._spool.read(int(s), int(length))
 
     def _pieces(self, block_size: int) -> Iterator[np.ndarray]:
+        spool = self._spool
+        if spool is not None:
+            rows = max(block_size, SPOOL_READ_BYTES // (8 * spool.n_channels))
+            for at in range(0, spool.rows, rows):
+                yield spool.read(at, rows)
+            return
         cols = self._layout.channel_cols
         for chunk in _chunks(self._path, self._layout):
             data = _parse(chunk, self._layout, self.info.path, usecols=cols)
             if data.shape[0]:
                 yield data
+
+    def _close(self) -> None:
+        if self._spool is not None:
+            self._spool.close()
 
 
 class ScopeCsvReader:
@@ -816,10 +897,17 @@ class ScopeCsvReader:
             )
         notes = list(layout.notes)
         use_clock = rate_given is None and layout.time_col is not None
+        spool = _new_spool(len(layout.channel_cols))
         try:
-            n, fit = _scan(p, layout, shown, use_clock)
+            n, fit = _scan(p, layout, shown, use_clock, spool)
         except OSError as exc:
+            if spool is not None:
+                spool.close()
             raise CaptureError(f"{shown}: cannot be read ({exc.strerror})") from None
+        except BaseException:
+            if spool is not None:
+                spool.close()
+            raise
         t0 = fit.t0 if fit is not None else 0.0
         if rate_given is not None:
             rate = rate_given
@@ -871,4 +959,4 @@ class ScopeCsvReader:
             full_scale=(math.nan,) * len(cols),
             notes=tuple(notes),
         )
-        return CsvSource(p, info, layout)
+        return CsvSource(p, info, layout, spool)
