@@ -95,7 +95,8 @@ print(json.dumps({
 
 #: one decode under cProfile: where its time goes, by stage: the cumulative time of the
 #: functions (name, a piece of their file's path) that decode_capture calls for each stage,
-#: directly or from a comprehension of its own; a name missing in this version counts 0
+#: directly, from a comprehension or closure of its own or through the edge pass; a name
+#: missing in this version counts 0
 PROFILE = r"""
 import cProfile, json, pstats, sys, time
 from toothcomb.decoders.options import DecodeOptions
@@ -112,7 +113,7 @@ wall = time.perf_counter() - t0
 stats = pstats.Stats(prof).stats
 total = next(v[3] for k, v in stats.items() if k[2] == "decode_capture")
 def from_decode(caller):
-    return caller[2] == "decode_capture" or (
+    return caller[2] in ("decode_capture", "handle") or caller[0].endswith("edgepass.py") or (
         caller[0].endswith("pipeline.py") and caller[2] in ("<dictcomp>", "<listcomp>"))
 out = {}
 for label, funcs in stages.items():
@@ -132,15 +133,15 @@ STAGES = {
         ("read_probe", "pipeline.py"), ("look_at_channel", "identify.py"),
         ("_clip_marks", "pipeline.py"),
     ],
-    "first seconds: edges, crank channel, wheel": [
-        ("_stream_prefix", "pipeline.py"), ("plan_crank", "pipeline.py"),
+    "first seconds: crank channel, wheel (their edges: the decode pass)": [
+        ("plan_crank", "pipeline.py"),
         ("_pick_crank", "pipeline.py"), ("_tooth_offsets", "pipeline.py"),
         ("_clipped_teeth", "pipeline.py"), ("vr_centre_direction", "cams.py"),
     ],
     "decode pass: reading the samples": [("code_blocks", "readers"), ("blocks", "readers")],
     "decode pass: front ends (samples -> edges)": [
         ("process_codes", "frontends"), ("process", "frontends"), ("finish", "frontends"),
-        ("process", "pipeline.py"), ("finish", "pipeline.py"),
+        ("release", "frontends"), ("process", "pipeline.py"), ("finish", "pipeline.py"),
     ],
     "decode pass: tooth tracker, cam locator, jitter, speed": [
         ("hand_over", "pipeline.py"), ("take", "pipeline.py"), ("feed", "wheels"),

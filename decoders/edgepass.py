@@ -3,17 +3,17 @@
 Turning samples into edges needs to know only what each channel carries (the front ends'
 calibration), not which channel is the crank or which wheel it has. So the pass starts right
 after the channels are looked at, and the first seconds' edges that identify the crank and its
-wheel are the first edges of that same pass (:class:`Received` keeps them): no sample is read
-or searched twice. Once the crank is known, the channels nobody follows are dropped
-(:meth:`EdgePass.keep`).
+wheel are the first edges of that same pass (:class:`Received` keeps them): no sample goes
+through a front end twice (the probe the channels were looked at is read on its own). Once the
+crank is known, the channels nobody follows are dropped (:meth:`EdgePass.keep`).
 
 The pass hands over edges, never samples, so memory stays flat whatever the capture's length.
 
-A worker thread for the pass was measured and left out: with the front ends on a thread of
-their own, beside the tooth tracker, a ten-minute two-channel WAV decoded no faster (1.53-1.82 s
-against 1.65-1.87 s on two cores); the front ends' numpy passes are bound by memory, and the
-threads trade the interpreter lock at every hand-over. One thread per channel was no faster
-either.
+A worker thread for the pass was tried and left out: with the front ends on a thread of their
+own beside the tooth tracker, ten-minute two-channel WAVs decoded no faster on two cores (1.49 to
+1.82 s threaded against 1.35 to 1.87 s in one thread, over eight runs); the front ends' numpy
+passes are bound by memory, and the threads trade the interpreter lock at every hand-over. One
+thread per channel, each reading the file itself, was no faster either.
 """
 
 from __future__ import annotations
