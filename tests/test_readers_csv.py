@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 import re
 from pathlib import Path
 
@@ -441,3 +442,41 @@ def test_a_decode_parses_the_text_once_and_leaves_no_file(tmp_path: Path, monkey
     with pytest.raises(CaptureError):
         decode_capture(str(path), DecodeOptions())
     assert list(scratch.iterdir()) == []
+
+
+def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
+    """A plain time column (fixed width, digits and a point) is read without the general
+    parser; every value must be the one numpy's own text parser gives, to the last bit, and
+    anything less plain must be left to that parser."""
+    rng = np.random.default_rng(99)
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    for trial in range(300):
+        decimals = int(rng.integers(0, 12))
+        whole = int(rng.integers(1, 4))
+        if whole + decimals > scopecsv.PLAIN_DIGITS:
+            continue
+        n = int(rng.integers(1, 400))
+        ticks = np.sort(rng.integers(0, 10 ** (whole + decimals) - 1, n))
+        sign = "-" if rng.random() < 0.2 else ""
+        digits = [str(k).rjust(whole + decimals, "0") for k in ticks]
+        stamps = [
+            sign + (d[:whole] + ("." + d[whole:] if decimals else "")) for d in digits
+        ]
+        text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
+        raw = text.encode()
+        got = scopecsv._plain_first_column(raw, lay)
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        want = np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
+        assert got is not None, trial
+        assert got.tobytes() == want.tobytes(), trial  # bit for bit, the sign of zero too
+    for text in [
+        "1e-3,1,2\n2e-3,1,2\n",  # an exponent
+        "0.1,1,2\n0.25,1,2\n",  # widths differ
+        "0.10,1,2\n0.2 ,1,2\n",  # a space
+        "0.10,1,2\n0.20,1\n",  # a line short of a field
+        "0.10,1,2\n0.20,1,2",  # no newline at the end
+        "nan,1,2\n0.20,1,2\n",
+        "0.1.0,1,2\n",  # two points
+        "1234567890.1234567,1,2\n",  # 17 digits: more than an exact integer holds
+    ]:
+        assert scopecsv._plain_first_column(text.encode(), lay) is None, text

@@ -652,17 +652,24 @@ def _clean(line: str, layout: _Layout) -> str:
 
 
 def _parse(
-    chunk: _Chunk, layout: _Layout, shown: str, usecols: Sequence[int] | None = None
+    chunk: _Chunk,
+    layout: _Layout,
+    shown: str,
+    usecols: Sequence[int] | None = None,
+    plain: bool = False,
 ) -> np.ndarray:
-    """Parse one chunk into an (n, columns) float64 array, or raise naming the bad line."""
-    text = chunk.raw.decode("latin-1")
+    """Parse one chunk into an (n, columns) float64 array, or raise naming the bad line. The
+    text stays bytes (numpy's C parser reads them as Latin-1, faster than a decoded string);
+    ``plain``: the chunk is known to hold no quote and no comment."""
+    raw = chunk.raw
     if layout.decimal == ",":
-        text = text.replace(",", ".")
-    if '"' in text:
-        text = text.replace('"', "")  # quoted numbers: a number never holds a delimiter
-    if any(m in text for m in layout.comments):
+        raw = raw.replace(b",", b".")
+    if not plain and b'"' in raw:
+        raw = raw.replace(b'"', b"")  # quoted numbers: a number never holds a delimiter
+    if not plain and _has_comment(raw, layout):
         # rare: comments among the numbers; numpy's C parser takes no list of markers
-        text = "\n".join(_clean(line, layout) for line in text.split("\n"))
+        lines = raw.decode("latin-1").split("\n")
+        raw = "\n".join(_clean(line, layout) for line in lines).encode("latin-1")
     cols = usecols
     if cols is None and layout.trailing:
         cols = range(layout.n_fields)
@@ -670,7 +677,8 @@ def _parse(
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)
             data = np.loadtxt(
-                io.StringIO(text),
+                io.BytesIO(raw),
+                encoding="latin-1",
                 dtype=np.float64,
                 delimiter=layout.delimiter,
                 comments=None,
@@ -683,6 +691,94 @@ def _parse(
     if data.shape[0] and data.shape[1] != want:
         raise _bad_line(chunk, layout, shown, f"{data.shape[1]} columns")
     return data
+
+
+def _has_comment(raw: bytes, layout: _Layout) -> bool:
+    return any(m.encode("latin-1") in raw for m in layout.comments)
+
+
+#: most digits of a time stamp :func:`_plain_first_column` reads (their integer stays below
+#: 2**53, so it is exact as a float)
+PLAIN_DIGITS = 15
+
+
+def _plain_first_column(raw: bytes, layout: _Layout) -> np.ndarray | None:
+    """The first column of a chunk of lines, read without the general parser when the chunk is
+    plain: every line ends in a newline and holds the layout's number of delimiters, and every
+    first field has the same width, made of digits with a decimal point at the same place (and
+    the same sign), as a scope prints its time column. None otherwise (the general parser then
+    reads it, and names any bad line).
+
+    The values are those of a correctly rounded conversion, as numpy's own parser gives: with at
+    most 15 digits the digits form an integer below 2**53 (exact as a float), the power of ten
+    that places the point is exact up to 10**22, and one IEEE division of two exact values is
+    correctly rounded (the fast path of W. D. Clinger, "How to Read Floating Point Numbers
+    Accurately", PLDI 1990).
+
+    >>> _plain_first_column(b"0.0010,5\\n0.0015,6\\n", _Layout(",", ".", 2, False, 0, 1)).tolist()
+    [0.001, 0.0015]
+    >>> _plain_first_column(b"1e-3,5\\n", _Layout(",", ".", 2, False, 0, 1)) is None
+    True
+    """
+    delim = layout.delimiter
+    if delim is None or len(delim) != 1 or layout.decimal != "." or layout.trailing:
+        return None
+    sep = delim.encode("latin-1")
+    w = raw.find(sep)
+    if not raw.endswith(b"\n") or not 1 <= w <= PLAIN_DIGITS + 2 or layout.n_fields < 2:
+        return None
+    b = np.frombuffer(raw, dtype=np.uint8)
+    nl = np.flatnonzero(b == 10)
+    # as many delimiters as the lines need (of a line with too many and one with too few, the
+    # channels' parser finds the one with too few)
+    if raw.count(sep) != len(nl) * (layout.n_fields - 1):
+        return None
+    starts = np.empty_like(nl)
+    starts[0] = 0
+    starts[1:] = nl[:-1] + 1
+    if starts[-1] + w >= len(b) or not np.all(b[starts + w] == b[w]):
+        return None
+    head = raw[:w]
+    sign = 1 if head[:1] == b"-" else 0
+    dot = head.find(b".")
+    if head.count(b".") > 1:
+        return None
+    ints = np.zeros(len(starts), dtype=np.int64)
+    digits = 0
+    for c in range(w):
+        col = b[starts + c]
+        if (c == 0 and sign) or c == dot:
+            if not np.all(col == head[c]):
+                return None
+            continue
+        col -= np.uint8(ord("0"))  # wraps below '0': anything not a digit is over 9
+        if np.any(col > 9):
+            return None
+        ints *= 10
+        ints += col
+        digits += 1
+    if not 1 <= digits <= PLAIN_DIGITS:
+        return None
+    places = w - 1 - dot if dot >= 0 else 0
+    values = ints.astype(np.float64) / float(10**places)
+    return -values if sign else values
+
+
+def _scan_chunk(chunk: _Chunk, layout: _Layout, shown: str) -> tuple[np.ndarray | None, np.ndarray]:
+    """(the time column or None, the channel columns) of one chunk, for the checking pass. A
+    plain chunk's time column (the first) is read by :func:`_plain_first_column`, which leaves
+    numpy's parser the channels alone; any other chunk is parsed whole."""
+    cols = layout.channel_cols
+    plain = b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
+    if layout.time_col == 0 and plain:
+        t = _plain_first_column(chunk.raw, layout)
+        if t is not None:
+            values = _parse(chunk, layout, shown, usecols=cols, plain=True)
+            if len(values) == len(t):
+                return t, values
+    data = _parse(chunk, layout, shown, plain=plain)
+    t = data[:, layout.time_col] if layout.time_col is not None else None
+    return t, data[:, cols]
 
 
 def _line_of_row(path: Path, layout: _Layout, row: int) -> int:
@@ -750,21 +846,20 @@ def _scan(
     clock = RegularClock(resolution=layout.resolution) if use_clock else None
     n = 0
     t_first = math.nan
-    cols = layout.channel_cols
     try:
         for chunk in _chunks(path, layout):
-            data = _parse(chunk, layout, shown)
-            if spool is not None and spool.ok and data.shape[0]:
-                spool.write(data[:, cols])
-            if layout.time_col is not None and data.shape[0]:
-                t = data[:, layout.time_col] * layout.time_scale
+            stamps, values = _scan_chunk(chunk, layout, shown)
+            if spool is not None and spool.ok and values.shape[0]:
+                spool.write(values)
+            if stamps is not None and values.shape[0]:
+                t = stamps * layout.time_scale
                 if n == 0:
                     t_first = float(t[0])
-                n += data.shape[0]
+                n += values.shape[0]
                 if clock is not None:
                     clock.feed(t)
             else:
-                n += data.shape[0]
+                n += values.shape[0]
         if n == 0:
             raise CaptureError(f"{shown}: has a header but no rows of numbers")
         if clock is None:
