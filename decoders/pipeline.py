@@ -581,7 +581,8 @@ def decode_capture(
     """
     opts = options or DecodeOptions()
     wheel = _wheel_from_hint(opts.wheel) if opts.wheel else None
-    with open_capture(path, sample_rate=opts.sample_rate) as src:
+    parsing = (lambda d, t: progress("parsing", d, t)) if progress else None
+    with open_capture(path, sample_rate=opts.sample_rate, progress=parsing) as src:
         info = src.info
         fs = info.sample_rate
         lv_progress = (lambda d, t: progress("levels", d, t)) if progress else None

@@ -480,3 +480,23 @@ def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
         "1234567890.1234567,1,2\n",  # 17 digits: more than an exact integer holds
     ]:
         assert scopecsv._plain_first_column(text.encode(), lay) is None, text
+
+
+def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) -> None:
+    """Opening a CSV parses all of it, which takes most of a long CSV's decode: it reports its
+    progress in bytes (to the file's size), and readers that do not ask for it are not given
+    the callback."""
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 64 * 1024)
+    path, _ = _long_csv(tmp_path)
+    calls: list[tuple[int, int]] = []
+    with open_capture(path, progress=lambda d, t: calls.append((d, t))):
+        pass
+    size = path.stat().st_size
+    assert len(calls) > 10 and calls[-1] == (size, size)
+    assert [d for d, _ in calls] == sorted(d for d, _ in calls)
+    from toothcomb.decoders.readers.write import write_capture
+
+    wav = tmp_path / "x.wav"
+    write_capture(str(wav), np.zeros((1000, 2)), 48000.0, ["a", "b"])
+    with open_capture(wav, progress=lambda d, t: calls.append((d, t))):
+        pass  # the audio reader takes no such option, and is not given one

@@ -19,6 +19,7 @@ flac 48000.0 4800
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from dataclasses import replace
 from typing import Any
 
@@ -76,6 +77,7 @@ def open_capture(
     *,
     sample_rate: float | None = None,
     reader: str | None = None,
+    progress: Callable[[int, int], None] | None = None,
     **options: Any,
 ) -> CaptureSource:
     """Open a capture file and return a source that streams it in blocks.
@@ -83,7 +85,9 @@ def open_capture(
     ``path`` may name a dataset inside an HDF5 file as ``file.h5:/group/dataset``.
     ``sample_rate`` (Hz) is for files that carry none, or overrides the file's own (with a note in
     ``info.notes``). ``reader`` forces a reader by name (``"audio"``, ``"csv"``, ``"hdf5"`` or a
-    third-party one); other keyword options go to the reader.
+    third-party one); other keyword options go to the reader. ``progress(done, total)`` is
+    called as a reader that reads the whole file when opening it (a scope CSV: every row is
+    parsed and checked) gets on; readers that declare ``takes_progress = True`` are given it.
 
     Raises :class:`CaptureError` for a missing, empty or unreadable file or one no reader
     recognises (the message lists the formats there are), :class:`UsageError` for bad options.
@@ -121,6 +125,8 @@ def open_capture(
         options["dataset"] = inner
     if rate is not None:
         options["sample_rate"] = rate
+    if progress is not None and getattr(plugin, "takes_progress", False):
+        options["progress"] = progress
     try:
         source = plugin.open(file_part, **options)
     except (CaptureError, UsageError, PluginError):

@@ -38,7 +38,7 @@ import re
 import tempfile
 import warnings
 from collections import Counter
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -839,16 +839,24 @@ def _new_spool(n_channels: int) -> _Spool | None:
 
 
 def _scan(
-    path: Path, layout: _Layout, shown: str, use_clock: bool, spool: _Spool | None = None
+    path: Path,
+    layout: _Layout,
+    shown: str,
+    use_clock: bool,
+    spool: _Spool | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> tuple[int, ClockFit | None]:
     """The checking pass: parse every row, count them, fit the time column; the channels'
-    values go to ``spool``."""
+    values go to ``spool``; ``progress(bytes done, bytes in all)`` after each chunk."""
+    size = path.stat().st_size if progress is not None else 0
     clock = RegularClock(resolution=layout.resolution) if use_clock else None
     n = 0
     t_first = math.nan
     try:
         for chunk in _chunks(path, layout):
             stamps, values = _scan_chunk(chunk, layout, shown)
+            if progress is not None:
+                progress(chunk.offset + len(chunk.raw), size)
             if spool is not None and spool.ok and values.shape[0]:
                 spool.write(values)
             if stamps is not None and values.shape[0]:
@@ -951,6 +959,9 @@ class ScopeCsvReader:
     name = "csv"
     handles = "scope exports as delimited text (comma, semicolon, tab or spaces)"
     extensions = EXTENSIONS
+    #: :func:`~toothcomb.decoders.readers.open_capture` passes its ``progress`` on: opening
+    #: parses every row
+    takes_progress = True
 
     @staticmethod
     def detect(path: str | os.PathLike[str]) -> bool:
@@ -971,9 +982,14 @@ class ScopeCsvReader:
 
     @staticmethod
     def open(
-        path: str | os.PathLike[str], *, sample_rate: float | None = None, **options: Any
+        path: str | os.PathLike[str],
+        *,
+        sample_rate: float | None = None,
+        progress: Callable[[int, int], None] | None = None,
+        **options: Any,
     ) -> CsvSource:
-        """Open a text capture; ``sample_rate`` (Hz) is needed when the file gives no rate."""
+        """Open a text capture; ``sample_rate`` (Hz) is needed when the file gives no rate.
+        Every row is parsed here; ``progress(bytes done, bytes in all)`` follows it."""
         reject_options("csv", options)
         rate_given = check_sample_rate(sample_rate)
         shown = os.fspath(path)
@@ -994,7 +1010,7 @@ class ScopeCsvReader:
         use_clock = rate_given is None and layout.time_col is not None
         spool = _new_spool(len(layout.channel_cols))
         try:
-            n, fit = _scan(p, layout, shown, use_clock, spool)
+            n, fit = _scan(p, layout, shown, use_clock, spool, progress)
         except OSError as exc:
             if spool is not None:
                 spool.close()
