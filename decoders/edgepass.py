@@ -37,8 +37,8 @@ class EdgeBatch:
     edges: dict[int, Edges]
     #: channel -> edges of the second front end some channels have (a valve's PWM view)
     extra: dict[int, Edges]
-    #: channel -> the front end's ``settled_s`` after the block (where it has one): edges
-    #: before it are all out
+    #: channel -> the front end's ``settled_s`` (where it has one) after the block or an
+    #: earlier one: edges before it are all out
     settled: dict[int, float]
     final: bool = False
 
@@ -84,6 +84,7 @@ class EdgePass:
             hasattr(fe, "process_codes") for fe in self._frontends.values()
         )
         stream = src.code_blocks(self._block_size) if by_codes else src.blocks(self._block_size)
+        settled: dict[int, float] | None = None
         for block in stream:
             data = block.data
             self._watch.check(data)
@@ -103,7 +104,11 @@ class EdgePass:
                     col = data[:, c] * scale if by_codes else data[:, c]
                     extra[c] = fe.process(col, block.start)
             self.fed = block.stop
-            yield EdgeBatch(block.stop, edges, extra, self._settled())
+            # the front ends' settled times move only when they search what they gathered,
+            # which is when edges come out; an older (earlier) time is always a safe one
+            if settled is None or any(len(e) for e in edges.values()):
+                settled = self._settled()
+            yield EdgeBatch(block.stop, edges, extra, settled)
         wanted = self._wanted
         yield EdgeBatch(
             src.info.n_samples,
