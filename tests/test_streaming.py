@@ -242,6 +242,39 @@ def test_vr_runs_of_half_waves_close_as_one_by_one(monkeypatch):
     assert np.array_equal(fast.strength, slow.strength)
 
 
+def test_vr_tooth_after_a_quiet_gap_costs_no_string_of_single_closes(monkeypatch):
+    """Without noise, the envelope decays through the gap's tiny half-waves and the tooth after
+    the gap outgrows it: an odd half-wave once per revolution. Closing it on its own must not
+    make the half-waves after it be closed one by one as well (the runs are tried again at
+    once), and the edges must be those of closing every half-wave in turn."""
+    n = 400_000
+    t = np.arange(n) / 100_000.0
+    rate = 300.0 * (1 + 0.3 * np.sin(2 * np.pi * 2 * t))
+    phase = 2 * np.pi * np.cumsum(rate) / 100_000.0
+    gap = (np.floor(phase / (2 * np.pi)) % 36) == 35
+    x = np.where(gap, 0.004 * np.sin(5 * phase), rate / 300.0 * np.sin(phase))
+    revolutions = int(phase[-1] / (2 * np.pi) // 36)
+    lv = ChannelLevels("ch0", n, -2, 2, 0, 0.7, (-1.2, -1, -0.9, -0.5, 0, 0.5, 0.9, 1, 1.2),
+                       0.0, 0.0)
+    singles = 0
+    plain_close = vr_mod.VrFrontEnd._close
+
+    def counting(self, *a):
+        nonlocal singles
+        singles += 1
+        return plain_close(self, *a)
+
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close", counting)
+    fast = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    assert revolutions >= 30 and singles <= 3 * revolutions  # was 17 a revolution
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_run", lambda self, *a: 0)
+    slow = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    assert len(fast) > 2000
+    assert np.array_equal(fast.times, slow.times)
+    assert np.array_equal(fast.direction, slow.direction)
+    assert np.array_equal(fast.strength, slow.strength)
+
+
 def test_vr_recursions_step_by_step_and_at_once_agree():
     x = RNG.random(500)
     for rec in (vr_mod._ENVELOPE, vr_mod._SLOW, vr_mod._WIDTH):

@@ -364,6 +364,7 @@ class VrFrontEnd(SampleFeed):
         i, m = 0, len(end)
         span = m  # half-waves tried at once; shorter after a run stopped early
         alone = 0  # half-waves to close one by one before trying a run again
+        streak = 0  # ordinary half-waves closed in a row, by runs or one by one
         while i < m:
             if alone > 0:
                 # odd half-waves come thick here (noise about the zero between teeth): one by
@@ -374,27 +375,36 @@ class VrFrontEnd(SampleFeed):
                 )
                 i += 1
                 alone = alone - 1 if ordinary else ALONE_AFTER_ODD
+                streak = streak + 1 if ordinary else 0
                 continue
             done = self._close_run(
                 start[i : i + span], end[i : i + span], sign[i : i + span], peak[i : i + span],
                 times, dirs, strength,
             )
             i += done
+            streak += done
             if done == span:
                 span *= 2
                 continue
             if i < m:
-                self._close(
+                ordinary = self._close(
                     float(start[i]), float(end[i]), int(sign[i]), float(peak[i]),
                     times, dirs, strength,
                 )
                 i += 1
-            # after a long run the odd half-wave was a one-off: try all the rest at once; after
-            # a short one, odd half-waves are frequent: close the next ones one by one
-            if done >= 64:
-                span = m - i
+                if ordinary:
+                    streak += 1
+                    continue
+            # after a long streak the odd half-wave was a one-off: try about twice as many at
+            # once next (odd ones that come back, such as the tooth after the gap once the
+            # envelope has decayed through a quiet gap, then cost a run of twice their spacing,
+            # not one of all that is left); after a short one, odd half-waves are frequent:
+            # close the next ones one by one
+            if streak >= 64:
+                span = 2 * streak
             else:
                 span, alone = 64, ALONE_AFTER_ODD
+            streak = 0
 
     def _scan(self, raw: np.ndarray, final: bool) -> None:
         """Find the crossings of ``raw`` (samples from :attr:`_tail_start`) and the peak of the
