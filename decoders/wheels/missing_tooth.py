@@ -27,7 +27,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy.signal import savgol_filter
 
 from ..errors import UsageError
 from ..model import Edges
@@ -285,6 +284,10 @@ def local_pitch(times: np.ndarray, exclude: np.ndarray | None = None, half: int 
     w = min(2 * half + 1, n if n % 2 else n - 1)
     if w < 3:
         return v
+    # imported here: scipy.signal takes a second or two to import, which a command that only
+    # lists the wheels (or prints its help) should not pay
+    from scipy.signal import savgol_filter
+
     return savgol_filter(v, w, min(2, w - 1), mode="interp")
 
 
