@@ -464,7 +464,9 @@ def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
         ]
         text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
         raw = text.encode()
-        got = scopecsv._plain_first_column(raw, lay)
+        fields = scopecsv._fields(raw, lay)
+        assert fields is not None, trial
+        got = scopecsv._plain_first_column(fields)
         # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
         want = np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
         assert got is not None, trial
@@ -479,7 +481,8 @@ def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
         "0.1.0,1,2\n",  # two points
         "1234567890.1234567,1,2\n",  # 17 digits: more than an exact integer holds
     ]:
-        assert scopecsv._plain_first_column(text.encode(), lay) is None, text
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is None or scopecsv._plain_first_column(fields) is None, text
 
 
 def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) -> None:
@@ -500,3 +503,46 @@ def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) ->
     write_capture(str(wav), np.zeros((1000, 2)), 48000.0, ["a", "b"])
     with open_capture(wav, progress=lambda d, t: calls.append((d, t))):
         pass  # the audio reader takes no such option, and is not given one
+
+
+def test_channel_values_read_by_their_distinct_texts_are_numpy_s() -> None:
+    """A plain chunk's channels with few distinct values are read by converting each distinct
+    text once; every value must be what numpy's own text parser gives, to the last bit, in every
+    way a number may be printed, and anything else must be left to that parser."""
+    rng = np.random.default_rng(2718)
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    forms = [
+        lambda v: f"{v:.6g}", lambda v: f"{v:.4f}", lambda v: f"{v:e}", lambda v: f"{v:+.3f}",
+        lambda v: f"{v:.2E}", lambda v: repr(float(v)), lambda v: f"{v:.0f}.",
+        lambda v: f"{v:.3f}".replace("0.", ".", 1),
+    ]
+    for trial in range(200):
+        levels = rng.normal(0.0, 10.0 ** rng.integers(-4, 3), int(rng.integers(1, 300)))
+        levels = np.round(levels * 256) / 256  # a converter's steps
+        form = forms[trial % len(forms)]
+        n = int(rng.integers(1, 2000))
+        a = [form(v) for v in rng.choice(levels, n)]
+        c = [form(v) for v in rng.choice(levels, n)]
+        pairs = enumerate(zip(a, c, strict=True))
+        text = "".join(f"{k / 1000:.3f},{x},{y}\n" for k, (x, y) in pairs)
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is not None, trial
+        got = scopecsv._few_values(fields, [1, 2])
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        want = np.loadtxt(io.StringIO(text), delimiter=",", usecols=(1, 2), ndmin=2)
+        if any(len(x) > scopecsv.KEY_CHARS for x in a + c):
+            assert got is None, trial
+            continue
+        assert got is not None, (trial, a[:3])
+        assert got.tobytes() == want.tobytes(), trial
+    for text in [
+        "0.1,nan,1\n",  # not a plain number
+        "0.1, 1,2\n",  # a space
+        "0.1,1-2,3\n",  # digits and signs that make no number
+        "0.1,e,3\n",
+        "0.1,12345678901234567,1\n",  # 17 characters
+    ]:
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is None or scopecsv._few_values(fields, [1, 2]) is None, text
+    many = "".join(f"{k},{k}.5,1\n" for k in range(scopecsv.MAX_DISTINCT + 1))
+    assert scopecsv._few_values(scopecsv._fields(many.encode(), lay), [1, 2]) is None

@@ -697,17 +697,57 @@ def _has_comment(raw: bytes, layout: _Layout) -> bool:
     return any(m.encode("latin-1") in raw for m in layout.comments)
 
 
+@dataclass(frozen=True)
+class _Fields:
+    """Where the fields of a plain chunk lie: every line ends in a newline and holds exactly the
+    layout's number of fields (no quote, comment or carriage return)."""
+
+    b: np.ndarray  # the chunk's bytes
+    seps: np.ndarray  # the delimiter or newline that ends each field, line after line
+    n: int  # fields per line
+
+    @property
+    def rows(self) -> int:
+        return len(self.seps) // self.n
+
+    def ends(self, col: int) -> np.ndarray:
+        return self.seps[col :: self.n]
+
+    def starts(self, col: int) -> np.ndarray:
+        if col > 0:
+            return self.seps[col - 1 :: self.n] + 1
+        out = np.empty(self.rows, dtype=self.seps.dtype)
+        out[0] = 0
+        out[1:] = self.seps[self.n - 1 :: self.n][:-1] + 1
+        return out
+
+
+def _fields(raw: bytes, layout: _Layout) -> _Fields | None:
+    """The fields of a chunk when it is plain (see :class:`_Fields`), else None."""
+    delim = layout.delimiter
+    if delim is None or len(delim) != 1 or layout.decimal != "." or layout.trailing:
+        return None
+    if not raw.endswith(b"\n") or b"\r" in raw:
+        return None
+    b = np.frombuffer(raw, dtype=np.uint8)
+    is_nl = b == 10
+    seps = np.flatnonzero(is_nl | (b == ord(delim)))
+    n = layout.n_fields
+    rows = len(seps) // n
+    if rows == 0 or len(seps) != rows * n or not np.all(is_nl[seps[n - 1 :: n]]):
+        return None  # a line with too many or too few fields
+    return _Fields(b, seps, n)
+
+
 #: most digits of a time stamp :func:`_plain_first_column` reads (their integer stays below
 #: 2**53, so it is exact as a float)
 PLAIN_DIGITS = 15
 
 
-def _plain_first_column(raw: bytes, layout: _Layout) -> np.ndarray | None:
-    """The first column of a chunk of lines, read without the general parser when the chunk is
-    plain: every line ends in a newline and holds the layout's number of delimiters, and every
-    first field has the same width, made of digits with a decimal point at the same place (and
-    the same sign), as a scope prints its time column. None otherwise (the general parser then
-    reads it, and names any bad line).
+def _plain_first_column(f: _Fields) -> np.ndarray | None:
+    """The first column of a plain chunk, read without a text parser when every first field
+    has the same width and is made of digits with a decimal point at the same place (and the
+    same sign), as a scope prints its time column. None otherwise.
 
     The values are those of a correctly rounded conversion, as numpy's own parser gives: with at
     most 15 digits the digits form an integer below 2**53 (exact as a float), the power of ten
@@ -715,30 +755,18 @@ def _plain_first_column(raw: bytes, layout: _Layout) -> np.ndarray | None:
     correctly rounded (the fast path of W. D. Clinger, "How to Read Floating Point Numbers
     Accurately", PLDI 1990).
 
-    >>> _plain_first_column(b"0.0010,5\\n0.0015,6\\n", _Layout(",", ".", 2, False, 0, 1)).tolist()
+    >>> lay = _Layout(",", ".", 2, False, 0, 1)
+    >>> _plain_first_column(_fields(b"0.0010,5\\n0.0015,6\\n", lay)).tolist()
     [0.001, 0.0015]
-    >>> _plain_first_column(b"1e-3,5\\n", _Layout(",", ".", 2, False, 0, 1)) is None
+    >>> _plain_first_column(_fields(b"1e-3,5\\n", lay)) is None
     True
     """
-    delim = layout.delimiter
-    if delim is None or len(delim) != 1 or layout.decimal != "." or layout.trailing:
+    b = f.b
+    starts = f.starts(0)
+    w = int(f.seps[0])
+    if not 1 <= w <= PLAIN_DIGITS + 2 or np.any(f.ends(0) - starts != w):
         return None
-    sep = delim.encode("latin-1")
-    w = raw.find(sep)
-    if not raw.endswith(b"\n") or not 1 <= w <= PLAIN_DIGITS + 2 or layout.n_fields < 2:
-        return None
-    b = np.frombuffer(raw, dtype=np.uint8)
-    nl = np.flatnonzero(b == 10)
-    # as many delimiters as the lines need (of a line with too many and one with too few, the
-    # channels' parser finds the one with too few)
-    if raw.count(sep) != len(nl) * (layout.n_fields - 1):
-        return None
-    starts = np.empty_like(nl)
-    starts[0] = 0
-    starts[1:] = nl[:-1] + 1
-    if starts[-1] + w >= len(b) or not np.all(b[starts + w] == b[w]):
-        return None
-    head = raw[:w]
+    head = bytes(b[:w])
     sign = 1 if head[:1] == b"-" else 0
     dot = head.find(b".")
     if head.count(b".") > 1:
@@ -764,18 +792,84 @@ def _plain_first_column(raw: bytes, layout: _Layout) -> np.ndarray | None:
     return -values if sign else values
 
 
+#: widest field :func:`_few_values` reads (its characters, 4 bits each, make one 64-bit key)
+KEY_CHARS = 16
+#: most distinct values a column of a chunk may hold for :func:`_few_values` to read it
+MAX_DISTINCT = 4096
+#: the characters of a plain number and their 4-bit codes (0: past the end; 15: any other)
+_NIBBLE_CHARS = "0123456789.-+e"
+_NIBBLE = np.full(256, 15, dtype=np.uint8)
+for _k, _ch in enumerate(_NIBBLE_CHARS):
+    _NIBBLE[ord(_ch)] = _k + 1
+_NIBBLE[ord("E")] = _NIBBLE[ord("e")]
+#: row w: 15 (all four bits kept) for the first w characters, then 0
+_KEEP = np.where(np.arange(KEY_CHARS)[None, :] < np.arange(KEY_CHARS + 1)[:, None], 15, 0).astype(
+    np.uint8
+)
+
+
+def _few_values(f: _Fields, cols: Sequence[int]) -> np.ndarray | None:
+    """Columns ``cols`` of a plain chunk, read by their distinct texts, when each holds few
+    distinct texts of at most 16 characters of a plain number (digits, point, sign, exponent):
+    a scope's converter gives a channel a few hundred levels at most. Each text becomes a 64-bit
+    key (4 bits a character); each distinct key is converted once, by Python's ``float``
+    (correctly rounded, as numpy's own parser is). None otherwise.
+
+    >>> lay = _Layout(",", ".", 3, False, 0, 1)
+    >>> _few_values(_fields(b"0.1,-0.5,1\\n0.2,0.25,1E1\\n0.3,-0.5,0\\n", lay), [1, 2]).tolist()
+    [[-0.5, 1.0], [0.25, 10.0], [-0.5, 0.0]]
+    """
+    rows = f.rows
+    out = np.empty((rows, len(cols)))
+    # every stretch of KEY_CHARS bytes, as a view: a field's bytes are the start of one row
+    window = np.lib.stride_tricks.sliding_window_view(
+        np.concatenate((f.b, np.zeros(KEY_CHARS, np.uint8))), KEY_CHARS
+    )
+    for j, c in enumerate(cols):
+        starts = f.starts(c)
+        width = f.ends(c) - starts
+        if width.min() < 1 or width.max() > KEY_CHARS:
+            return None
+        span = int(width.max()) + int(width.max()) % 2
+        # each field's characters as 4-bit codes, 0 past its end: equal texts, equal keys
+        codes = _NIBBLE[window[starts, :span]]
+        codes &= _KEEP[width, :span]
+        if np.any(codes == 15):
+            return None
+        packed = np.zeros((rows, KEY_CHARS // 2), dtype=np.uint8)
+        packed[:, : span // 2] = (codes[:, 0::2] << 4) | codes[:, 1::2]
+        keys = packed.view(np.uint64).ravel()
+        distinct = np.unique(keys)
+        if len(distinct) > MAX_DISTINCT:
+            return None
+        values = np.empty(len(distinct))
+        for k, row in enumerate(distinct.view(np.uint8).reshape(-1, KEY_CHARS // 2).tolist()):
+            text = "".join(
+                _NIBBLE_CHARS[q - 1] for byte in row for q in (byte >> 4, byte & 15) if q
+            )
+            try:
+                values[k] = float(text)
+            except ValueError:
+                return None  # not a number after all ("1-2", "e"): numpy's parser says where
+        out[:, j] = values[np.searchsorted(distinct, keys)]
+    return out
+
+
 def _scan_chunk(chunk: _Chunk, layout: _Layout, shown: str) -> tuple[np.ndarray | None, np.ndarray]:
-    """(the time column or None, the channel columns) of one chunk, for the checking pass. A
-    plain chunk's time column (the first) is read by :func:`_plain_first_column`, which leaves
-    numpy's parser the channels alone; any other chunk is parsed whole."""
+    """(the time column or None, the channel columns) of one chunk, for the checking pass. In a
+    plain chunk (:func:`_fields`), a fixed-width time column (the first) is read by
+    :func:`_plain_first_column` and channels with few distinct values by :func:`_few_values`;
+    numpy's parser reads the rest, and any other chunk whole."""
     cols = layout.channel_cols
     plain = b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
-    if layout.time_col == 0 and plain:
-        t = _plain_first_column(chunk.raw, layout)
-        if t is not None:
+    f = _fields(chunk.raw, layout) if plain and layout.time_col == 0 else None
+    t = _plain_first_column(f) if f is not None else None
+    if f is not None and t is not None:
+        values = _few_values(f, cols)
+        if values is None:
             values = _parse(chunk, layout, shown, usecols=cols, plain=True)
-            if len(values) == len(t):
-                return t, values
+        if len(values) == len(t):
+            return t, values
     data = _parse(chunk, layout, shown, plain=plain)
     t = data[:, layout.time_col] if layout.time_col is not None else None
     return t, data[:, cols]
