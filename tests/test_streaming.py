@@ -222,6 +222,12 @@ def _vr_signal(n: int = 400_000) -> np.ndarray:
     return x
 
 
+def _assert_same_edges(a: Edges, b: Edges) -> None:
+    assert np.array_equal(a.times, b.times)
+    assert np.array_equal(a.direction, b.direction)
+    assert np.array_equal(a.strength, b.strength)
+
+
 def _edges_of(fe, x: np.ndarray, block: int) -> Edges:
     parts = [fe.process(x[i : i + block], i) for i in range(0, len(x), block)]
     return Edges.concat([*parts, fe.finish()])
@@ -237,9 +243,7 @@ def test_vr_runs_of_half_waves_close_as_one_by_one(monkeypatch):
     monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_run", lambda self, *a: 0)
     slow = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
     assert len(fast) > 1000
-    assert np.array_equal(fast.times, slow.times)
-    assert np.array_equal(fast.direction, slow.direction)
-    assert np.array_equal(fast.strength, slow.strength)
+    _assert_same_edges(fast, slow)
 
 
 def test_vr_tooth_after_a_quiet_gap_costs_no_string_of_single_closes(monkeypatch):
@@ -270,9 +274,7 @@ def test_vr_tooth_after_a_quiet_gap_costs_no_string_of_single_closes(monkeypatch
     monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_run", lambda self, *a: 0)
     slow = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
     assert len(fast) > 2000
-    assert np.array_equal(fast.times, slow.times)
-    assert np.array_equal(fast.direction, slow.direction)
-    assert np.array_equal(fast.strength, slow.strength)
+    _assert_same_edges(fast, slow)
 
 
 def test_vr_recursions_step_by_step_and_at_once_agree():
