@@ -547,21 +547,26 @@ def last_crossing_by_hand(
     return ks, has
 
 
-@pytest.mark.parametrize("span", [2, 3, 8, 12, 17, 48, 49, 70])
+@pytest.mark.parametrize("span", [2, 3, 8, 12, 17, 40, 41, 47, 48, 49, 70, 88, 89, 170, 300])
 def test_hall_crossing_found_on_bits_is_the_definition(span):
-    """Stretches of up to 48 samples are searched as numbers, a bit per sample beyond the
-    midpoint; longer ones by the plain search. Both must give the last crossing the definition
-    gives, for integer codes and floats, rising and falling, at whole and half-code levels."""
+    """Stretches are searched as numbers, a bit per sample beyond the midpoint, 48 samples to
+    a number (longer ones in overlapping pieces). The search must give the last crossing the
+    definition gives, for integer codes and floats, rising and falling, at whole and half-code
+    levels, and the plain search must agree."""
     rng = np.random.default_rng(21 + span)
     n = 400
     x = rng.integers(-6, 7, size=(n, span)).astype(np.int16)
     level = np.round(rng.uniform(-4, 4, n) * 2) / 2
     sign = np.where(rng.random(n) < 0.5, 1, -1)
-    limit = rng.integers(0, span, n)
+    limit = rng.integers(0, span + 3, n)  # some reach past the last column
     want_k, want_has = last_crossing_by_hand(x, limit, level, sign, 3)
     assert 0 < sum(want_has) < n
+    inside = np.arange(span)[None, :] <= limit[:, None]
     for stretch in (x, x.astype(float)):
         k, has = hall_mod._last_crossing_within(stretch, limit, level, sign, 3)
+        assert k.tolist() == want_k
+        assert has.tolist() == want_has
+        k, has = hall_mod._last_crossing(stretch, inside, level, sign, 3)
         assert k.tolist() == want_k
         assert has.tolist() == want_has
 

@@ -39,6 +39,10 @@ FLANKS_PER_TIMING = 512
 # common practice, no source: sensor output rise/fall times of a few microseconds plus an
 # instrument's anti-alias response fit well inside 25 us
 TRANSITION_S = 25e-6
+#: flanks (of a first detection) on which :meth:`HallFrontEnd.calibrate` chooses its window
+# common practice, no source: the median step height of a few hundred flanks moves by well
+# under the 10 % the window search looks for
+CALIBRATION_FLANKS = 512
 
 
 class HallFrontEnd(SampleFeed):
@@ -123,13 +127,25 @@ class HallFrontEnd(SampleFeed):
         half the shortest level between flanks.
         """
         probe = np.asarray(probe, dtype=float)
-        window = default_window(sample_rate)
+
+        def detect(x: np.ndarray, window: int) -> Edges:
+            first = cls(sample_rate, levels, window=window, plateau=1)
+            return Edges.concat([first.process(x, 0), first.finish()])
+
+        start = default_window(sample_rate)
+        whole = detect(probe, start)
+        # the window is chosen on the stretch holding the first CALIBRATION_FLANKS flanks (the
+        # whole probe when it holds fewer): the medians compared are as steady on them, and a
+        # VR channel's wide windows cost a pass over a stretch, not over the whole probe
+        stretch = probe
+        if len(whole) > CALIBRATION_FLANKS:
+            stretch = probe[: int(whole.times[CALIBRATION_FLANKS] * sample_rate)]
         # A slower instrument (a scope's bandwidth limit) spreads a flank over more samples:
         # widen the window until the step heights stop growing.
+        window = start
         best: tuple[int, Edges] | None = None
         for _ in range(6):
-            first = cls(sample_rate, levels, window=window, plateau=1)
-            edges = Edges.concat([first.process(probe, 0), first.finish()])
+            edges = whole if stretch is probe and window == start else detect(stretch, window)
             if len(edges) >= 4:
                 if best is not None and np.median(edges.strength) < 1.1 * np.median(
                     best[1].strength
@@ -139,9 +155,11 @@ class HallFrontEnd(SampleFeed):
             elif best is not None:
                 break
             window *= 2
-        opts: dict[str, Any] = {"window": default_window(sample_rate)}
+        opts: dict[str, Any] = {"window": start}
         if best is not None:
             window, edges = best
+            if stretch is not probe:  # the chosen window's flanks over the whole probe
+                edges = whole if window == start else detect(probe, window)
             opts["window"] = window
             opts["threshold"] = 0.4 * float(np.median(edges.strength))
             # the shortest level between real flanks (pairs closer than two windows are the two
@@ -698,7 +716,8 @@ def _last_crossing(
     return np.where(has, last, W - 1), has
 
 
-#: columns :func:`_last_crossing_within` handles as the bits of one number (exact in float64)
+#: columns :func:`_last_crossing_within` handles as the bits of one number (exact in float64;
+#: a multiple of 8)
 BIT_COLUMNS = 48
 #: times 8 bytes of 0 or 1 (byte i the lowest-but-i): their bits, byte i at bit 56 + i
 # source: the multiply-and-shift bit gather of H. S. Warren, "Hacker's Delight" (2nd ed.,
@@ -710,10 +729,11 @@ def _last_crossing_within(
     stretch: np.ndarray, limit: np.ndarray, mid: np.ndarray, sign: np.ndarray, W: int
 ) -> tuple[np.ndarray, np.ndarray]:
     """:func:`_last_crossing` with the search region of each row given as its last column
-    (``limit``: columns 0..limit are inside). Rows of up to :data:`BIT_COLUMNS` samples are
-    turned into numbers, a bit per sample on the far side of the midpoint, and the crossings
-    found on those numbers: a few passes over the flanks instead of a few over every sample
-    of every stretch, and exactly what the definition gives.
+    (``limit``: columns 0..limit are inside). The rows are turned into numbers, a bit per
+    sample on the far side of the midpoint, :data:`BIT_COLUMNS` columns to a number (longer
+    rows in overlapping pieces), and the crossings found on those numbers: a few passes over
+    the flanks instead of a few over every sample of every stretch, and exactly what the
+    definition gives.
 
     >>> k, has = _last_crossing_within(np.array([[0.0, 0, 1, 0, 1, 1]]), np.array([5]),
     ...                                np.array([0.5]), np.array([1]), 2)
@@ -721,9 +741,8 @@ def _last_crossing_within(
     ([3], [True])
     """
     n, span = stretch.shape
-    if span > BIT_COLUMNS or n == 0:
-        inside = np.arange(span)[None, :] <= limit[:, None]
-        return _last_crossing(stretch, inside, mid, sign, W)
+    if n == 0:
+        return np.full(0, W - 1), np.zeros(0, dtype=bool)
     width = -(-span // 8) * 8
     above = np.zeros((n, width), dtype=bool)
     if stretch.dtype.kind in "iu":
@@ -736,19 +755,36 @@ def _last_crossing_within(
         np.greater(stretch, t.astype(kind)[:, None], out=above[:, :span])
     else:
         up = None
-        np.greater_equal((stretch - mid[:, None]) * sign[:, None], 0, out=above[:, :span])
+        # (x - mid) * sign >= 0 is x * sign >= mid * sign: a sign change and a subtraction
+        # are exact in the comparison's terms (finite samples)
+        s = sign.astype(stretch.dtype)[:, None]
+        np.greater_equal(stretch * s, mid[:, None] * s, out=above[:, :span])
     words = above.view("<u8")
-    bits = (words[:, 0] * _GATHER_BITS) >> np.uint64(56)
-    for q in range(1, width // 8):
-        bits |= ((words[:, q] * _GATHER_BITS) >> np.uint64(56)) << np.uint64(8 * q)
-    if up is not None:
-        bits ^= np.where(up, np.uint64(0), np.uint64((1 << span) - 1))
-    # bit j: below the midpoint at column j, at or beyond it at j + 1, and j + 1 inside
-    inside = (np.uint64(1) << (limit.astype(np.uint64))) - np.uint64(1)
-    cross = ~bits & (bits >> np.uint64(1)) & inside
-    has = cross != 0
-    last = np.frexp(cross.astype(np.float64))[1] - 1  # the highest bit set
-    return np.where(has, last, W - 1), has
+    limit = np.asarray(limit, dtype=np.int64)
+    last = np.full(n, W - 1, dtype=np.int64)
+    has = np.zeros(n, dtype=bool)
+    # pieces of BIT_COLUMNS columns starting every BIT_COLUMNS - 8 (whole words): a crossing
+    # from column j to j + 1 lies inside the piece that starts at or before j and reaches past
+    # j + 1, and the last piece holding any crossing holds the last one
+    for c0 in range(0, max(span - 1, 1), BIT_COLUMNS - 8):
+        q0 = c0 // 8
+        cols = min(BIT_COLUMNS, width - c0)
+        bits = (words[:, q0] * _GATHER_BITS) >> np.uint64(56)
+        for q in range(1, cols // 8):
+            bits |= ((words[:, q0 + q] * _GATHER_BITS) >> np.uint64(56)) << np.uint64(8 * q)
+        if up is not None:
+            turn = np.uint64((1 << min(cols, span - c0)) - 1)
+            bits ^= np.where(up, np.uint64(0), turn)
+        # bit j: below the midpoint at column c0 + j, at or beyond it at c0 + j + 1, and
+        # c0 + j + 1 inside
+        reach = np.clip(limit - c0, 0, cols - 1).astype(np.uint64)
+        inside = (np.uint64(1) << reach) - np.uint64(1)
+        cross = ~bits & (bits >> np.uint64(1)) & inside
+        found = cross != 0
+        top = np.frexp(cross.astype(np.float64))[1] - 1  # the highest bit set
+        last = np.where(found, top + c0, last)
+        has |= found
+    return last, has
 
 
 def _pad_right(x: np.ndarray, width: int) -> np.ndarray:
