@@ -22,6 +22,7 @@ from typing import Any
 
 import numpy as np
 
+from ..frontends.base import PERIODOGRAM_SAMPLES, Periodogram, periodogram
 from ..frontends.hall import HallFrontEnd
 from ..model import ChannelLevels, Edges
 from ..wheels.missing_tooth import looks_like_clipped_vr
@@ -45,26 +46,34 @@ NOISE_SPAN_SIGMAS = 10.0
 LINE_RATIO = 100.0
 
 
-def strongest_line(x: np.ndarray, sample_rate: float, n_max: int = 1 << 18) -> tuple[float, float]:
-    """(frequency in Hz, height over the median) of the strongest line in the spectrum of ``x``.
+def strongest_line(
+    x: np.ndarray,
+    sample_rate: float,
+    n_max: int = PERIODOGRAM_SAMPLES,
+    spectrum: Periodogram | None = None,
+) -> tuple[float, float]:
+    """(frequency in Hz, height over the median) of the strongest line in the spectrum of ``x``
+    (``spectrum``: its periodogram, when the caller has it already).
 
     >>> t = np.arange(48000) / 48000.0
     >>> f, h = strongest_line(np.sin(2 * np.pi * 1000.0 * t), 48000.0)
     >>> round(f), h > 1e6
     (1000, True)
     """
-    x = np.asarray(x, dtype=float)[:n_max]
-    if len(x) < 64:
+    if spectrum is None:
+        spectrum = periodogram(x, n_max)
+    if spectrum.n < 64:
         return 0.0, 0.0
-    p = np.abs(np.fft.rfft(x - x.mean())) ** 2
-    p = p[1:]
+    p = spectrum.power[1:]
     med = float(np.median(p))
     k = int(np.argmax(p))
     height = float(p[k]) / med if med > 0 else (np.inf if p[k] > 0 else 0.0)
-    return (k + 1) * sample_rate / len(x), height
+    return (k + 1) * sample_rate / spectrum.n, height
 
 
-def has_lines(x: np.ndarray, n_max: int = 1 << 18) -> bool:
+def has_lines(
+    x: np.ndarray, n_max: int = PERIODOGRAM_SAMPLES, spectrum: Periodogram | None = None
+) -> bool:
     """True when the spectrum of ``x`` has a line standing far out of its noise floor.
 
     >>> rng = np.random.default_rng(0)
@@ -72,7 +81,7 @@ def has_lines(x: np.ndarray, n_max: int = 1 << 18) -> bool:
     >>> has_lines(n), has_lines(n + 0.5 * np.sin(np.arange(50000) * 2 * np.pi / 7))
     (False, True)
     """
-    return strongest_line(x, 1.0, n_max)[1] > LINE_RATIO
+    return strongest_line(x, 1.0, n_max, spectrum)[1] > LINE_RATIO
 
 
 @dataclass(frozen=True)
@@ -124,11 +133,20 @@ def look_at_channel(
     from ..frontends.vr import VrFrontEnd
 
     probe = np.asarray(probe, dtype=float)
+    # the probe's periodogram, taken once when a judgement needs it
+    spectra: list[Periodogram] = []
+
+    def spectrum() -> Periodogram:
+        if not spectra:
+            spectra.append(periodogram(probe))
+        return spectra[0]
+
     span = levels.span
     step = 2.0 ** -15 if np.isfinite(levels.maximum) and abs(levels.maximum) <= 1.0 else 0.0
     if not np.isfinite(span) or span <= max(1e-9, 4 * step):
         return ChannelLook("flat", 1.0, f"it is flat (peak-to-peak {span:.3g})")
-    if levels.noise > 0 and span < NOISE_SPAN_SIGMAS * levels.noise and not has_lines(probe):
+    small = levels.noise > 0 and span < NOISE_SPAN_SIGMAS * levels.noise
+    if small and not has_lines(probe, spectrum=spectrum()):
         return ChannelLook(
             "noise",
             0.9,
@@ -146,7 +164,7 @@ def look_at_channel(
     if hint is None:
         if len(strong) < 2 or not math.isfinite(sharp):
             # a signal with a clear spectral line but no step as tall as its swing is analog
-            kind, conf = "vr", 0.8 if has_lines(probe) else 0.5
+            kind, conf = "vr", 0.8 if has_lines(probe, spectrum=spectrum()) else 0.5
             why = "it swings without sharp steps: a VR (analog) sensor"
         elif sharp >= SHARP_HALL and looks_like_clipped_vr(edges):
             kind, conf = "vr", 0.7
@@ -170,8 +188,10 @@ def look_at_channel(
             )
     else:
         kind, conf, why = hint, 1.0, "sensor kind given by the user"
-    fopts = opts if kind == "hall" else VrFrontEnd.calibrate(probe, sample_rate, levels)
-    line_hz, height = strongest_line(probe, sample_rate)
+    fopts = (
+        opts if kind == "hall" else VrFrontEnd.calibrate(probe, sample_rate, levels, spectrum())
+    )
+    line_hz, height = strongest_line(probe, sample_rate, spectrum=spectrum())
     return ChannelLook(
         kind, conf, why, rate, sharp, fopts, line_hz if height > LINE_RATIO else 0.0
     )

@@ -11,7 +11,7 @@ filter delay can bias an angle.
 
 from __future__ import annotations
 
-from typing import Any, Protocol
+from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 from scipy.ndimage import median_filter
@@ -331,3 +331,27 @@ def has_spikes(x: np.ndarray, height: float) -> bool:
         if np.any(np.abs(m, out=m) > height):
             return True
     return False
+
+
+#: samples a periodogram is taken over (the first ones)
+PERIODOGRAM_SAMPLES = 1 << 18
+
+
+class Periodogram(NamedTuple):
+    """|X_k|^2 of the real FFT of a stretch of samples less their mean (bin 0 included), and
+    how many samples were transformed."""
+
+    power: np.ndarray
+    n: int
+
+
+def periodogram(x: np.ndarray, n_max: int = PERIODOGRAM_SAMPLES) -> Periodogram:
+    """The periodogram of the first ``n_max`` samples of ``x``; several judgements of one
+    probe (noise floor, spectral lines) share it.
+
+    >>> p = periodogram(np.sin(2 * np.pi * np.arange(64) / 8))
+    >>> p.n, int(np.argmax(p.power))
+    (64, 8)
+    """
+    y = np.asarray(x, dtype=float)[:n_max]
+    return Periodogram(np.abs(np.fft.rfft(y - y.mean())) ** 2, len(y))

@@ -25,7 +25,16 @@ import numpy as np
 from scipy.signal import lfilter
 
 from ..model import ChannelLevels, Edges
-from .base import NEIGHBOURS, SampleFeed, cubic_fraction, despike, has_spikes
+from .base import (
+    NEIGHBOURS,
+    PERIODOGRAM_SAMPLES,
+    Periodogram,
+    SampleFeed,
+    cubic_fraction,
+    despike,
+    has_spikes,
+    periodogram,
+)
 
 
 class VrFrontEnd(SampleFeed):
@@ -101,9 +110,14 @@ class VrFrontEnd(SampleFeed):
 
     @classmethod
     def calibrate(
-        cls, probe: np.ndarray, sample_rate: float, levels: ChannelLevels
+        cls,
+        probe: np.ndarray,
+        sample_rate: float,
+        levels: ChannelLevels,
+        spectrum: Periodogram | None = None,
     ) -> dict[str, Any]:
-        """Starting envelope, noise floor and spike removal from the first part of the channel.
+        """Starting envelope, noise floor and spike removal from the first part of the channel
+        (``spectrum``: its periodogram, when the caller has it already).
 
         The noise floor comes from the spectrum, not from sample differences (which at a few
         samples per tooth measure the signal's own slope): the median periodogram value over
@@ -118,7 +132,8 @@ class VrFrontEnd(SampleFeed):
         # speeds up must not have its first teeth judged against the later, larger swings
         head = y[: max(2000, int(0.05 * sample_rate))]
         envelope = float(np.max(np.abs(head)))
-        floor = max(4.0 * spectral_noise(y), 3.0 * quantisation_step(probe), 1e-12)
+        noise = spectral_noise(y, spectrum=spectrum)
+        floor = max(4.0 * noise, 3.0 * quantisation_step(probe), 1e-12)
         first = cls(sample_rate, levels, envelope=envelope, floor=floor)
         edges = Edges.concat([first.process(probe, 0), first.finish()])
         opts: dict[str, Any] = {"envelope": envelope, "floor": floor}
@@ -607,7 +622,9 @@ def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
     return float(_lfilter_run(rec, y0, np.array([x]))[0])
 
 
-def spectral_noise(y: np.ndarray, n_max: int = 1 << 18) -> float:
+def spectral_noise(
+    y: np.ndarray, n_max: int = PERIODOGRAM_SAMPLES, spectrum: Periodogram | None = None
+) -> float:
     """Standard deviation of the white noise under a signal, from its spectrum.
 
     For white noise of variance s^2 the periodogram values |X_k|^2 of an N-point transform are
@@ -620,12 +637,14 @@ def spectral_noise(y: np.ndarray, n_max: int = 1 << 18) -> float:
     >>> x = 0.2 * rng.normal(size=100_000) + np.sin(np.arange(100_000) * 2 * np.pi / 9.0)
     >>> round(spectral_noise(x), 2)
     0.2
+
+    ``spectrum`` is the periodogram of ``y`` when the caller has it already.
     """
-    y = np.asarray(y, dtype=float)[:n_max]
-    n = len(y)
+    if spectrum is None:
+        spectrum = periodogram(y, n_max)
+    p, n = spectrum
     if n < 64:
         return 0.0
-    p = np.abs(np.fft.rfft(y - y.mean())) ** 2
     band = p[int(0.25 * n) : int(0.45 * n)]
     if len(band) == 0:
         return 0.0
