@@ -385,7 +385,8 @@ class CrankStats:
         self._first: dict[int, tuple[float, float]] = {}
         self._bucket = max(duration_s / TRACE_POINTS, 1e-9)
         self._next_bucket = -math.inf
-        self.trace: list[tuple[float, float]] = []
+        #: the speed trace, as pieces of (times, rpm)
+        self._trace: list[tuple[np.ndarray, np.ndarray]] = []
         self.findings: list[Finding] = []
         self.extra = self.missing = self.losses = 0
 
@@ -438,8 +439,14 @@ class CrankStats:
             while (j := follow[j]) < len(mid):
                 chain.append(j)
             take = np.array(chain)
-        self.trace.extend(zip(mid[take].tolist(), rpm[take].tolist(), strict=True))
+        self._trace.append((mid[take], rpm[take]))
         self._next_bucket = float(after[take[-1]])
+
+    def trace(self) -> np.ndarray:
+        """The speed trace: (time s, rpm) rows."""
+        if not self._trace:
+            return np.empty((0, 2))
+        return np.column_stack([np.concatenate(c) for c in zip(*self._trace, strict=True)])
 
     @property
     def deg(self) -> float:
@@ -1257,6 +1264,7 @@ def _result(
         rpm = RpmStats(stats.rpm_min, mean_rpm, stats.rpm_max)
     else:
         rpm = RpmStats(float("nan"), mean_rpm, float("nan"))
+    trace = stats.trace()
     crank_result = CrankResult(
         channel=info.channels[plan.channel],
         sensor=plan.sensor,  # type: ignore[arg-type]
@@ -1274,7 +1282,7 @@ def _result(
         missing_teeth=stats.missing,
         jitter=jitter.result(),
         findings=tuple(crank_findings),
-        rpm_trace=tuple(stats.trace),
+        rpm_trace=tuple(zip(*(c.tolist() for c in trace.T), strict=True)),
     )
 
     located: dict[int, CamEvents] = {}
@@ -1356,7 +1364,7 @@ def _result(
             phase_source=(c == source_cam),
         )
         cam = replace(cam, library=tuple(match_cam(cam, library)))
-        cam_results.append(with_phaser(cam, crank_result.rpm_trace, parked=parked))
+        cam_results.append(with_phaser(cam, trace, parked=parked))
         choices[f"cam {name}"] = _sensor_choice(looks[c])
     actuators: list[ActuatorResult] = []
     if vw.pairs:

@@ -643,14 +643,17 @@ def judge(result: PhaserResult, cam: str, limits: PhaserLimits | None = None,
     return out
 
 
-def rpm_lookup(rpm_trace: Sequence[tuple[float, float]]) -> Callable[[np.ndarray], np.ndarray]:
-    """Engine speed at any time from the crank's (time, rpm) trace (nan without one).
+def rpm_lookup(
+    rpm_trace: Sequence[tuple[float, float]] | np.ndarray,
+) -> Callable[[np.ndarray], np.ndarray]:
+    """Engine speed at any time from the crank's (time, rpm) trace, pairs or an array of
+    (time, rpm) rows (nan without one).
 
     >>> f = rpm_lookup([(0.0, 800.0), (1.0, 1000.0)])
     >>> f(np.array([0.5])).tolist()
     [900.0]
     """
-    if not rpm_trace:
+    if len(rpm_trace) == 0:
         return lambda t: np.full(len(t), np.nan)
     tr = np.asarray(rpm_trace, dtype=float)
     return lambda t: np.interp(t, tr[:, 0], tr[:, 1])
@@ -665,7 +668,7 @@ CODES = (
 
 def with_phaser(
     cam: CamResult,
-    rpm_trace: Sequence[tuple[float, float]] = (),
+    rpm_trace: Sequence[tuple[float, float]] | np.ndarray = (),
     limits: PhaserLimits | None = None,
     parked: bool = False,
     label: str | None = None,
