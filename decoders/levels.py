@@ -156,17 +156,19 @@ class _Accumulator:
         self.hi = np.maximum(self.hi, hi_b)
 
     def _subsample(self, start: int, data: np.ndarray) -> None:
+        """Every ``step``-th sample by capture index, and its difference from the one before."""
         first = (-start) % self.step
-        idx = np.arange(first, data.shape[0], self.step)
-        if idx.size:
-            self.sub.append(data[idx])
-            before = np.empty((idx.size, data.shape[1]))
-            inner = idx >= 1
-            before[inner] = data[idx[inner] - 1]
-            if not inner[0]:
+        taken = data[first :: self.step]
+        if len(taken):
+            self.sub.append(taken.copy())
+            before = np.empty(taken.shape)
+            if first >= 1:
+                before[:] = data[first - 1 :: self.step][: len(taken)]
+            else:
                 before[0] = self.prev if self.prev is not None else np.nan
+                before[1:] = data[self.step - 1 :: self.step][: len(taken) - 1]
             with np.errstate(invalid="ignore"):
-                self.diffs.append(np.abs(data[idx] - before))
+                self.diffs.append(np.abs(np.subtract(taken, before, out=before), out=before))
         self.prev = data[-1].copy()
 
     def result(self, names: tuple[str, ...]) -> tuple[ChannelLevels, ...]:

@@ -198,3 +198,17 @@ def test_empty_capture_and_single_sample() -> None:
     assert one.n == 1 and one.mean == 2.5 and one.std == 0.0
     assert one.percentiles == (2.5,) * len(POINTS)
     assert math.isnan(one.noise)  # no sample before the first one
+
+
+
+def test_subsample_across_cells_matches_numpy() -> None:
+    """Every 3rd sample (700 003 samples): cells of 65 536 samples start at each of the three
+    offsets from the subsample grid, so a cell's first taken sample is its first sample (its
+    difference then reaches into the cell before) or a later one."""
+    x = _capture(700_003)[:, :2]
+    k = subsample_step(x.shape[0])
+    assert k == 3  # ceil(700 003 / 2**18)
+    assert {(-m * levels_mod.CELL) % k for m in range(3)} == {0, 1, 2}
+    for block in (4096, 65536):
+        for j, lv in enumerate(measure_levels(ArraySource(x), block_size=block)):
+            _check(lv, x[:, j], k=k)
