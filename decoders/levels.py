@@ -54,7 +54,7 @@ CLIP_SHARE = 1e-3
 #: median absolute deviation of a standard normal (0.6745) times sqrt(2) for a difference of two
 NOISE_DIVISOR = 0.6745 * math.sqrt(2.0)
 #: captures longer than this many samples get spread-window levels (see :func:`estimate_levels`)
-SPARSE_ABOVE = 1 << 22
+SPARSE_ABOVE = 1 << 19
 #: windows of the spread estimate, and samples in each (2**18 in all; each window costs a seek,
 #: so fewer longer ones)
 WINDOWS = 256
