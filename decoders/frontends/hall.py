@@ -305,7 +305,8 @@ class HallFrontEnd(SampleFeed):
         # only found the flank and measured the levels), from the cleaned ones where a spike sits
         # on it
         span = int(np.max(e - s)) + W + 2
-        # (integer codes stay codes: _last_crossing and _linear_at compare them exactly)
+        # (integer codes stay codes: _last_crossing_within and _linear_at compare them
+        # exactly)
         stretch = [_rows(raw, s - W, span, clip=True)]
         if spiky:
             stretch.append(_rows(buf, s - W, span, clip=True))
@@ -683,39 +684,6 @@ def _plateau_level(x: np.ndarray, first: np.ndarray, w: int) -> np.ndarray:
     return _mean(_floats(x[first[:, None] + np.arange(w)]))
 
 
-def _last_crossing(
-    stretch: np.ndarray,
-    inside: np.ndarray,
-    mid: np.ndarray,
-    sign: np.ndarray,
-    W: int,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Per flank: the sample (counted from the start of its stretch, s - W) after which the
-    ``stretch`` of samples last crosses ``mid`` in the flank's direction inside its search
-    region, and whether there was such a crossing (if not: the sample before the run, s - 1).
-
-    >>> k, has = _last_crossing(np.array([[0.0, 0, 1, 0, 1, 1]]), np.ones((1, 6), bool),
-    ...                         np.array([0.5]), np.array([1]), 2)
-    >>> k.tolist(), has.tolist()
-    ([3], [True])
-    """
-    if stretch.dtype.kind in "iu":
-        # integer codes: at or beyond the midpoint is above ceil(mid) - 1 for a rising flank,
-        # not above floor(mid) for a falling one (exactly what the float test gives)
-        up = sign > 0
-        t = np.where(up, np.ceil(mid) - 1, np.floor(mid))
-        info = np.iinfo(stretch.dtype)
-        kind = stretch.dtype if info.min <= t.min() and t.max() <= info.max else np.int64
-        above = (stretch > t.astype(kind)[:, None]) != ~up[:, None]
-    else:
-        above = (stretch - mid[:, None]) * sign[:, None] >= 0
-    cross = ~above[:, :-1] & above[:, 1:] & inside[:, 1:]
-    has = cross.any(axis=1)
-    span = stretch.shape[1]
-    last = span - 2 - np.argmax(cross[:, ::-1], axis=1)
-    return np.where(has, last, W - 1), has
-
-
 #: columns :func:`_last_crossing_within` handles as the bits of one number (exact in float64;
 #: a multiple of 8)
 BIT_COLUMNS = 48
@@ -728,12 +696,15 @@ _GATHER_BITS = np.uint64(0x0102040810204080)
 def _last_crossing_within(
     stretch: np.ndarray, limit: np.ndarray, mid: np.ndarray, sign: np.ndarray, W: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`_last_crossing` with the search region of each row given as its last column
-    (``limit``: columns 0..limit are inside). The rows are turned into numbers, a bit per
-    sample on the far side of the midpoint, :data:`BIT_COLUMNS` columns to a number (longer
-    rows in overlapping pieces), and the crossings found on those numbers: a few passes over
-    the flanks instead of a few over every sample of every stretch, and exactly what the
-    definition gives.
+    """Per flank: the sample (counted from the start of its stretch, s - W) after which the
+    ``stretch`` of samples last crosses ``mid`` in the flank's direction (from short of it to
+    at or beyond it) with the sample after the crossing no later than column ``limit``, and
+    whether there was such a crossing (if not: the sample before the run, s - 1, at W - 1).
+
+    The rows are turned into numbers, a bit per sample on the far side of the midpoint,
+    :data:`BIT_COLUMNS` columns to a number (longer rows in overlapping pieces), and the
+    crossings found on those numbers: a few passes over the flanks instead of a few over every
+    sample of every stretch, and exactly what the definition gives.
 
     >>> k, has = _last_crossing_within(np.array([[0.0, 0, 1, 0, 1, 1]]), np.array([5]),
     ...                                np.array([0.5]), np.array([1]), 2)
@@ -746,8 +717,9 @@ def _last_crossing_within(
     width = -(-span // 8) * 8
     above = np.zeros((n, width), dtype=bool)
     if stretch.dtype.kind in "iu":
-        # as in _last_crossing: above ceil(mid) - 1 for a rising flank; for a falling one the
-        # bits are turned over below
+        # integer codes: at or beyond the midpoint is above ceil(mid) - 1 for a rising flank,
+        # not above floor(mid) for a falling one (exactly what the float test gives; for a
+        # falling flank the bits are turned over below)
         up = sign > 0
         t = np.where(up, np.ceil(mid) - 1, np.floor(mid))
         info = np.iinfo(stretch.dtype)
