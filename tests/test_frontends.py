@@ -489,6 +489,85 @@ def test_hall_persistence_check_counts_when_a_stretch_is_not_clean():
     np.testing.assert_array_equal(got, want)
 
 
+def test_hall_bin_moves_are_the_definition():
+    """Where codes change bin (bins of the largest power of two not above the threshold, not
+    above the codes' range) from the sample W before: every such index, in order, as a
+    sample-by-sample comparison finds them; none below one code of threshold."""
+    rng = np.random.default_rng(23)
+    W = 5
+    for dtype, lo, hi in ((np.int16, -20000, 21000), (np.uint8, 10, 240)):
+        x = _cam_like(6000, list(range(37, 6000, 61)), lo, hi, rng)
+        codes = np.round(x).clip(np.iinfo(dtype).min, np.iinfo(dtype).max).astype(dtype)
+        for thr in (0.4 * (hi - lo), 0.2 * (hi - lo), 1e9):
+            m = hall_mod._bin_moves(codes, W, thr)
+            assert m is not None
+            assert 2**m.shift <= min(thr, 2 ** (8 * codes.itemsize - 1))
+            bins = [int(v) >> m.shift for v in codes]
+            want = [i for i in range(W, len(codes)) if bins[i] != bins[i - W]]
+            assert m.at.tolist() == want
+    assert hall_mod._bin_moves(np.array([0, 1, 0, 1, 0], np.int16), 1, 0.5) is None
+
+
+def test_hall_persistence_check_by_bins_is_the_count():
+    """With the bin moves of integer codes at hand, the persistence check passes clean
+    stretches without reading them: it must give what counting every sample gives, on a
+    two-level signal with noise, spikes in some stretches, levels sitting on a bin edge (many
+    moves: the check falls back to the reductions) and thresholds of several bins."""
+    rng = np.random.default_rng(29)
+    W, w, P = 5, 3, 40
+    n = 40_000
+    # the high level of the second sits two noise sigmas above an edge of the bins (8192); the
+    # last has spikes in most stretches
+    cases = ((-9000, 9000, 30), (-9000, 8272, 0), (300, 3300, 20), (300, 3300, 400))
+    for low, high, spikes in cases:
+        flanks = np.arange(300, n - 300, 150)
+        level = np.full(n, low, dtype=float)
+        for k, f in enumerate(flanks):
+            level[f:] = high if k % 2 == 0 else low
+        x = level + rng.normal(0, 40, n)
+        # spikes and their tails: runs of 1 to 16 samples thrown across the midpoint
+        for at, length, way in zip(
+            rng.integers(0, n - 16, spikes), rng.integers(1, 17, spikes),
+            rng.choice([-1, 1], spikes), strict=True,
+        ):
+            x[at : at + length] += way * 0.8 * (high - low)
+        # runt pulses: every 15th flank falls back to the old level just before its stretch
+        # after, and stays there past the stretch (no bin moves inside it, but the wrong level)
+        for k in range(3, len(flanks), 15):
+            f = flanks[k]
+            x[f + 4 : f + 60] = (low if k % 2 == 0 else high) + rng.normal(0, 40, 56)
+        codes = np.round(x).clip(-32768, 32767).astype(np.int16)
+        fe = HallFrontEnd(1e5, levels_of(np.r_[0.0, 1.0]), window=W, plateau=w, persist=P)
+        sign = np.where(np.arange(len(flanks)) % 2 == 0, 1, -1)
+        after = flanks + 2 + w
+        before = flanks - W - w - P
+        mid = 0.5 * (low + high) + rng.uniform(-50, 50, len(flanks))
+        rows_a = codes[after[:, None] + np.arange(P)].astype(float)
+        rows_b = codes[before[:, None] + np.arange(P)].astype(float)
+        n_a = np.count_nonzero((rows_a - mid[:, None]) * sign[:, None] > 0, axis=1)
+        n_b = np.count_nonzero((rows_b - mid[:, None]) * -sign[:, None] > 0, axis=1)
+        want = (n_a / P >= 0.8) & (n_b / P >= 0.8)
+        for thr in (0.4 * (high - low), 0.25 * (high - low)):
+            moves = hall_mod._bin_moves(codes, W, thr)
+            assert moves is not None
+            got = fe._held(codes, after, before, mid, sign, moves)
+            np.testing.assert_array_equal(got, want)
+            np.testing.assert_array_equal(fe._held(codes, after, before, mid, sign), want)
+        assert np.all(~want[3::15])  # the runts do not hold
+        if spikes == 30:
+            assert np.count_nonzero(~want) > len(want[3::15])  # and some spikes break one
+        by_bins = fe._held_by_bins(
+            codes, np.where(sign > 0, after, before), np.where(sign > 0, before, after), mid,
+            hall_mod._bin_moves(codes, W, 0.4 * (high - low)),
+        )
+        if high == 8272 or spikes == 400:
+            # few samples move, but most stretches hold a move: the reductions take over
+            assert by_bins is None
+        else:
+            assert by_bins is not None and np.count_nonzero(by_bins) > 0.75 * len(flanks)
+            assert np.all(want[by_bins])  # what the bins pass holds, counted
+
+
 def test_hall_binned_step_search_is_the_definition():
     """Dense steps on integer codes are searched by bins of a power of two no larger than the
     threshold (two codes further apart than the threshold lie in different bins), subtracting

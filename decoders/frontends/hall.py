@@ -25,7 +25,7 @@ edge.
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -242,7 +242,16 @@ class HallFrontEnd(SampleFeed):
     def _find(self, raw: np.ndarray, final: bool, n: int) -> None:
         W, w, half = self.window, self.plateau, self._half
         buf = despike(raw, self.despike)
-        s, e, sign = _steps(buf, W, self._thr_steps, dense=self._dense)
+        # where the last search found flanks several to a stretch (a crank), integer codes are
+        # searched by bins (_bin_moves); where the bins moved also bounds, for the persistence
+        # check below, the stretches where levels must hold
+        moves = None
+        if self._dense and buf.dtype.kind in "iu":
+            moves = _bin_moves(buf, W, self._thr_steps)
+        if moves is not None:
+            s, e, sign = _steps_binned(buf, W, self._thr_steps, moves)
+        else:
+            s, e, sign = _steps(buf, W, self._thr_steps)
         # a crank's flanks come several to a stretch: its next search goes straight to them
         self._dense = len(s) * STRETCH > n
         g = self._buf_start
@@ -279,7 +288,7 @@ class HallFrontEnd(SampleFeed):
             reach = self._reach
             nr = reach.shape[1]
             if self._reach_run:
-                held = self._held(buf, post + w, pre - nr, mid0, sign)
+                held = self._held(buf, post + w, pre - nr, mid0, sign, moves)
             else:
                 after = _beyond(buf[(post + w - 1)[:, None] + reach], mid0, sign)
                 before = _beyond(buf[pre[:, None] - reach], mid0, -sign)
@@ -315,14 +324,15 @@ class HallFrontEnd(SampleFeed):
 
     def _held(
         self, buf: np.ndarray, after: np.ndarray, before: np.ndarray, mid: np.ndarray,
-        sign: np.ndarray,
+        sign: np.ndarray, moves: BinMoves | None = None,
     ) -> np.ndarray:
         """Per flank: whether the new level holds over the ``P`` samples from ``after`` on and
         the old one held over the ``P`` samples from ``before`` on (``P`` = :attr:`persist`;
         at least 80 % of them beyond the midpoint ``mid`` on their side). Where every sample of
-        both stretches lies on its side (a clean flank: the lowest or highest of each stretch
-        says so, one pass over the stretches) it holds; the others are counted sample by
-        sample."""
+        both stretches lies on its side (a clean flank) it holds; the others are counted sample
+        by sample. Clean stretches are told by where the bins of integer codes moved
+        (``moves``, :func:`_bin_moves`) when the caller has them, else by the lowest or highest
+        sample of each stretch (one pass over the stretches)."""
         P = self.persist
         if max(int(after.max()), int(before.max())) + P >= len(buf):
             # a stretch reaches the end of the samples: count them all
@@ -330,15 +340,24 @@ class HallFrontEnd(SampleFeed):
             held = np.zeros(len(mid), dtype=bool)
         else:
             # the stretches on the high side (after a rising flank, before a falling one) must
-            # lie above the midpoint, the others below: the lowest sample of the first kind,
-            # the highest of the second (flanks alternate, so the stretches of each kind come
-            # in order and each reduction runs about once over the samples)
+            # lie above the midpoint, the others below
             up = sign > 0
             high_side = np.where(up, after, before)
             low_side = np.where(up, before, after)
-            low = np.minimum.reduceat(buf, np.stack((high_side, high_side + P), axis=1).ravel())
-            high = np.maximum.reduceat(buf, np.stack((low_side, low_side + P), axis=1).ravel())
-            held = (low[::2] > mid) & (high[::2] < mid)
+            held = None if moves is None else self._held_by_bins(
+                buf, high_side, low_side, mid, moves
+            )
+            if held is None:
+                # the lowest sample of the first kind, the highest of the second (flanks
+                # alternate, so the stretches of each kind come in order and each reduction
+                # runs about once over the samples)
+                low = np.minimum.reduceat(
+                    buf, np.stack((high_side, high_side + P), axis=1).ravel()
+                )
+                high = np.maximum.reduceat(
+                    buf, np.stack((low_side, low_side + P), axis=1).ravel()
+                )
+                held = (low[::2] > mid) & (high[::2] < mid)
             doubt = np.flatnonzero(~held)
             if len(doubt) == 0:
                 return held
@@ -347,6 +366,47 @@ class HallFrontEnd(SampleFeed):
         n_before = _beyond(_rows(buf, before[doubt], P), m, -sg)
         held[doubt] = (n_after / P >= 0.8) & (n_before / P >= 0.8)
         return held
+
+    def _held_by_bins(
+        self, buf: np.ndarray, high_side: np.ndarray, low_side: np.ndarray, mid: np.ndarray,
+        moves: BinMoves,
+    ) -> np.ndarray | None:
+        """Per flank: True where every sample of its high-side stretch is certainly above
+        ``mid`` and every one of its low-side stretch below, from the bins of integer codes
+        alone; None when too few are (the reductions then cost less than counting the rest).
+
+        No bin moves inside a stretch after its first W samples (``moves``) means every sample
+        there lies in the bin of one of those W; a bin ``b`` holds the codes ``b * 2**shift``
+        to ``(b + 1) * 2**shift - 1``, so the whole stretch lies above ``mid`` when the lowest
+        of those bins starts above it (below, when the highest ends below it)."""
+        P, W = self.persist, self.window
+        head = min(W, P)
+        unit = 2.0**moves.shift
+        clean = np.ones(len(mid), dtype=bool)
+        # the moves as runs of consecutive samples (a flank moves a few in a row)
+        at = moves.at
+        brk = np.flatnonzero(np.diff(at) != 1)
+        run_first = np.concatenate((at[:1], at[brk + 1]))
+        run_last = np.concatenate((at[brk], at[-1:]))
+        for starts, high in ((high_side, True), (low_side, False)):
+            # no move from sample start + W to the end of the stretch: the first run that ends
+            # at or after start + W begins after the stretch (or there is none)
+            j = np.searchsorted(run_last, starts + W)
+            nxt = np.append(run_first, np.iinfo(np.int64).max)[j]
+            clean &= nxt >= starts + max(P, W)
+            # the lowest (highest) bin of the first W samples
+            pick = np.minimum if high else np.maximum
+            edge = buf[starts]
+            for j in range(1, head):
+                edge = pick(edge, buf[starts + j])
+            edge = np.right_shift(edge, moves.shift)
+            if high:
+                clean &= edge * unit > mid
+            else:
+                clean &= (edge + 1.0) * unit - 1 < mid
+        if np.count_nonzero(~clean) > len(mid) // 4:
+            return None
+        return clean
 
     def _time_pending(self) -> Edges:
         """Time the flanks found so far: where each crosses the midpoint of its two levels."""
@@ -473,8 +533,40 @@ def _steps(
 BINNED_SHARE = 1 / 8
 
 
+class BinMoves(NamedTuple):
+    """Where integer codes change bin: with bins of ``2**shift`` codes (``x >> shift``),
+    ``at`` holds, in order, every sample index i (i >= W) whose bin differs from that of the
+    sample W before it. Between two such indices every sample lies in the bin of one of the W
+    samples before the stretch (bin(x[i]) = bin(x[i - W]) = ...): :meth:`HallFrontEnd._held`
+    bounds a stretch with a handful of samples instead of reading them all."""
+
+    shift: int
+    at: np.ndarray
+
+
+def _bin_moves(x: np.ndarray, W: int, threshold: float) -> BinMoves | None:
+    """The :class:`BinMoves` of integer codes ``x`` for bins of the largest power of two not
+    above ``threshold`` (and less than the codes' own range); None when the threshold is below
+    one code or more than :data:`BINNED_SHARE` of the samples move (a level on a bin edge).
+
+    >>> m = _bin_moves(np.r_[np.zeros(50, np.int16), np.full(50, 9, np.int16)], 2, 5)
+    >>> m.shift, m.at.tolist()
+    (2, [50, 51])
+    """
+    if not threshold >= 1 or len(x) <= W:
+        return None
+    # 2**shift <= threshold, and less than the codes' own range
+    shift = min(math.floor(min(threshold, 2.0**62)).bit_length(), 8 * x.dtype.itemsize) - 1
+    bins = np.right_shift(x, shift)
+    at = np.flatnonzero(bins[W:] != bins[:-W])
+    if len(at) > BINNED_SHARE * (len(x) - W):
+        return None
+    at += W
+    return BinMoves(shift, at)
+
+
 def _steps_binned(
-    x: np.ndarray, W: int, threshold: float
+    x: np.ndarray, W: int, threshold: float, moves: BinMoves | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
     """:func:`_steps` on integer codes with many steps, by bins: with ``B`` the largest power of
     two not above the threshold, two codes more than the threshold apart lie in different bins
@@ -482,24 +574,21 @@ def _steps_binned(
     samples before can start or continue a step; only those few are subtracted and compared
     (exactly, in 64 bits). One shift and one comparison per sample instead of a subtraction and
     two comparisons in a wider type. None when the threshold is below one code or too many
-    samples are candidates (then :func:`_steps_dense` is the faster).
+    samples are candidates (then :func:`_steps_dense` is the faster). ``moves``: the
+    :func:`_bin_moves` of ``x``, when the caller has them.
 
     >>> x = np.r_[np.zeros(50, np.int16), np.full(50, 9, np.int16)]
     >>> [a.tolist() for a in _steps_binned(x, 2, 5)]
     [[50], [51], [1]]
     """
-    if not threshold >= 1 or len(x) <= W:
+    if moves is None:
+        moves = _bin_moves(x, W, threshold)
+    if moves is None:
         return None
-    # 2**shift <= threshold, and less than the codes' own range
-    shift = min(math.floor(min(threshold, 2.0**62)).bit_length(), 8 * x.dtype.itemsize) - 1
-    bins = np.right_shift(x, shift)
-    moved = bins[W:] != bins[:-W]
-    if np.count_nonzero(moved) > BINNED_SHARE * len(moved):
-        return None
-    at = np.flatnonzero(moved)
-    d = np.subtract(x[at + W], x[at], dtype=np.int64)
+    at = moves.at
+    d = np.subtract(x[at], x[at - W], dtype=np.int64)
     k = np.flatnonzero(np.abs(d) > threshold)
-    return _runs(at[k] + W, d[k] > 0)
+    return _runs(at[k], d[k] > 0)
 
 
 def _difference_type(x: np.ndarray, high: Any, low: Any) -> np.dtype:
