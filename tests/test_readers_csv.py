@@ -364,6 +364,60 @@ def _long_csv(tmp_path: Path, n: int = 40_000) -> tuple[Path, np.ndarray]:
     return _write(tmp_path, "long.csv", text), values
 
 
+def test_the_checking_pass_reads_the_faster_way_and_the_same_numbers(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A long file has its first plain chunks, then one in RACE_EVERY, read both ways (the
+    vectorised readers and numpy's parser) and timed, and the way that took less reads the
+    others. The choice must follow the times, and either way the values must be the ones
+    numpy's own text loader reads, to the last bit."""
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 16 * 1024)  # about 60 chunks
+    path, _ = _long_csv(tmp_path)
+    # source: numpy.loadtxt reads the same text (header line skipped, time column dropped)
+    want = np.loadtxt(path, delimiter=",", skiprows=1, usecols=(1, 2))
+    plain_reads, numpy_reads = [], []
+    read_plain, parse_columns = scopecsv._read_plain, scopecsv._parse_columns
+    monkeypatch.setattr(
+        scopecsv, "_read_plain", lambda *a: plain_reads.append(1) or read_plain(*a)
+    )
+    monkeypatch.setattr(
+        scopecsv, "_parse_columns", lambda *a, **k: numpy_reads.append(1) or parse_columns(*a, **k)
+    )
+    for numpy_faster in (False, True):
+        made: list[scopecsv._ChunkScanner] = []
+        # a timer by which each race takes 1 s the slower way and 0.5 s the faster
+        calls = iter(range(10**6))
+        slow, fast = (1.0, 0.5) if numpy_faster else (0.5, 1.0)
+
+        def clock(calls=calls, slow=slow, fast=fast) -> float:
+            k = next(calls)
+            return (k // 3) * 10.0 + (0.0, slow, slow + fast)[k % 3]
+
+        base = scopecsv._ChunkScanner
+
+        class Timed(base):  # type: ignore[valid-type, misc]
+            def __init__(self, layout, shown, race, clock=clock, made=made) -> None:
+                super().__init__(layout, shown, race, clock)
+                made.append(self)
+
+        monkeypatch.setattr(scopecsv, "_ChunkScanner", Timed)
+        plain_reads.clear()
+        numpy_reads.clear()
+        with open_capture(path) as src:
+            got = np.concatenate([b.data for b in src.blocks(4096)])
+        monkeypatch.setattr(scopecsv, "_ChunkScanner", base)
+        scanner = made[0]
+        chunks = -(-path.stat().st_size // (16 * 1024))
+        assert scanner.vectorised is not numpy_faster
+        # the first three chunks and about one in 16 after them were raced
+        assert scopecsv.RACE_CHUNKS + 2 <= scanner.raced <= scopecsv.RACE_CHUNKS + chunks // 16
+        other = numpy_reads if not numpy_faster else plain_reads
+        assert len(other) == scanner.raced  # the slower way read only the raced chunks
+        assert len(plain_reads) + len(numpy_reads) >= chunks + scanner.raced - 1
+        np.testing.assert_array_equal(got, want)
+        assert got.tobytes() == want.tobytes()
+
+
 def test_the_spool_gives_what_the_text_says(tmp_path: Path, monkeypatch) -> None:
     """The values parsed once at open are read back from the spool: blocks and windows anywhere
     must be the numbers numpy's own text loader reads, and dropping the spool (no room in the

@@ -36,6 +36,7 @@ import math
 import os
 import re
 import tempfile
+import time
 import warnings
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
@@ -567,12 +568,34 @@ class _Chunk:
     """A run of whole lines of the data part of the file."""
 
     offset: int
-    first_line: int
+    #: the number of its first line; None when not counted (see :attr:`line`)
+    first_line: int | None
     raw: bytes
     at_eof: bool
+    #: the file and where its data part starts, to count the lines before the chunk on demand
+    path: Path | None = None
+    layout: _Layout | None = None
+
+    @property
+    def line(self) -> int:
+        """The number of the chunk's first line (counted in the file when it was not, which
+        only an error message needs)."""
+        if self.first_line is None:
+            assert self.path is not None and self.layout is not None
+            count = 0
+            with open(self.path, "rb") as f:
+                f.seek(self.layout.data_offset)
+                left = self.offset - self.layout.data_offset
+                while left > 0 and (piece := f.read(min(left, CHUNK_BYTES))):
+                    count += piece.count(b"\n")
+                    left -= len(piece)
+            self.first_line = self.layout.data_line + count
+        return self.first_line
 
 
-def _chunks(path: Path, layout: _Layout) -> Iterator[_Chunk]:
+def _chunks(path: Path, layout: _Layout, count_lines: bool = True) -> Iterator[_Chunk]:
+    """The data part of the file in chunks of whole lines; without ``count_lines`` their line
+    numbers are counted only when asked for (:attr:`_Chunk.line`)."""
     with open(path, "rb") as f:
         size = os.fstat(f.fileno()).st_size
         f.seek(layout.data_offset)
@@ -585,8 +608,11 @@ def _chunks(path: Path, layout: _Layout) -> Iterator[_Chunk]:
             if not raw.endswith(b"\n"):
                 raw += f.readline()
             at_eof = f.tell() >= size
-            yield _Chunk(offset, line, raw, at_eof)
-            line += raw.count(b"\n")
+            if count_lines:
+                yield _Chunk(offset, line, raw, at_eof)
+                line += raw.count(b"\n")
+            else:
+                yield _Chunk(offset, None, raw, at_eof, path, layout)
             offset += len(raw)
             if at_eof:
                 return
@@ -611,7 +637,7 @@ def _bad_line(chunk: _Chunk, layout: _Layout, shown: str, detail: str) -> Captur
         body = _clean(line, layout)
         if not body:
             continue
-        number = chunk.first_line + k
+        number = chunk.line + k
         fields = _split(body, layout.delimiter)
         if layout.trailing and len(fields) > 1 and fields[-1] == "":
             fields = fields[:-1]
@@ -638,7 +664,7 @@ def _bad_line(chunk: _Chunk, layout: _Layout, shown: str, detail: str) -> Captur
             f"{shown}: line {number} holds {bad!r}, which is not a number ({_quote(line)}); "
             "fix or delete that line"
         )
-    return CaptureError(f"{shown}: cannot parse the lines from {chunk.first_line} on ({detail})")
+    return CaptureError(f"{shown}: cannot parse the lines from {chunk.line} on ({detail})")
 
 
 def _clean(line: str, layout: _Layout) -> str:
@@ -694,7 +720,11 @@ def _parse(
 
 
 def _has_comment(raw: bytes, layout: _Layout) -> bool:
-    return any(m.encode("latin-1") in raw for m in layout.comments)
+    # a marker's first character is looked for first: a search for one byte is several
+    # times faster than one for several, and numbers hold none of them
+    return any(
+        m[:1] in raw and m in raw for m in (c.encode("latin-1") for c in layout.comments)
+    )
 
 
 @dataclass(frozen=True)
@@ -855,24 +885,106 @@ def _few_values(f: _Fields, cols: Sequence[int]) -> np.ndarray | None:
     return out
 
 
-def _scan_chunk(chunk: _Chunk, layout: _Layout, shown: str) -> tuple[np.ndarray | None, np.ndarray]:
-    """(the time column or None, the channel columns) of one chunk, for the checking pass. In a
-    plain chunk (:func:`_fields`), a fixed-width time column (the first) is read by
-    :func:`_plain_first_column` and channels with few distinct values by :func:`_few_values`;
-    numpy's parser reads the rest, and any other chunk whole."""
+def _plain_fields(chunk: _Chunk, layout: _Layout) -> _Fields | None:
+    """The fields of a plain chunk whose first column is the time (see :class:`_Fields`)."""
+    if layout.time_col != 0 or b'"' in chunk.raw or _has_comment(chunk.raw, layout):
+        return None
+    return _fields(chunk.raw, layout)
+
+
+def _read_plain(
+    chunk: _Chunk, f: _Fields, layout: _Layout, shown: str
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """(the time column, the channel columns) of a plain chunk, the time column read by
+    :func:`_plain_first_column` and channels with few distinct values by :func:`_few_values`
+    (numpy's parser reads the other channels); None when the time column is not plain."""
+    t = _plain_first_column(f)
+    if t is None:
+        return None
     cols = layout.channel_cols
-    plain = b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
-    f = _fields(chunk.raw, layout) if plain and layout.time_col == 0 else None
-    t = _plain_first_column(f) if f is not None else None
-    if f is not None and t is not None:
-        values = _few_values(f, cols)
-        if values is None:
-            values = _parse(chunk, layout, shown, usecols=cols, plain=True)
-        if len(values) == len(t):
-            return t, values
+    values = _few_values(f, cols)
+    if values is None:
+        values = _parse(chunk, layout, shown, usecols=cols, plain=True)
+    return (t, values) if len(values) == len(t) else None
+
+
+def _parse_columns(
+    chunk: _Chunk, layout: _Layout, shown: str, plain: bool = False
+) -> tuple[np.ndarray | None, np.ndarray]:
+    """(the time column or None, the channel columns) of a chunk, by numpy's parser."""
     data = _parse(chunk, layout, shown, plain=plain)
     t = data[:, layout.time_col] if layout.time_col is not None else None
-    return t, data[:, cols]
+    return t, data[:, layout.channel_cols]
+
+
+def _scan_chunk(
+    chunk: _Chunk, layout: _Layout, shown: str, vectorised: bool = True
+) -> tuple[np.ndarray | None, np.ndarray]:
+    """(the time column or None, the channel columns) of one chunk, for the checking pass: a
+    plain chunk by :func:`_read_plain` (unless not ``vectorised``), any other by numpy's
+    parser."""
+    if vectorised and (f := _plain_fields(chunk, layout)) is not None:
+        if (got := _read_plain(chunk, f, layout, shown)) is not None:
+            return got
+    plain = b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
+    return _parse_columns(chunk, layout, shown, plain)
+
+
+#: a file of more than this many chunks has plain chunks read both ways (see
+#: :class:`_ChunkScanner`)
+RACE_ABOVE = 8
+#: plain chunks read both ways before a way is chosen
+RACE_CHUNKS = 3
+#: after that, one chunk in this many is read both ways again (the values of a capture, and so
+#: the faster way, can change along it)
+RACE_EVERY = 16
+
+
+class _ChunkScanner:
+    """Reads the chunks of the checking pass the faster of two ways: plain chunks by the
+    vectorised readers (:func:`_read_plain`) or every chunk by numpy's parser. Which is faster
+    depends on the numpy release (its text loader became several times faster in recent
+    releases), on the machine and on the values, so in a long file (``race``) the first
+    :data:`RACE_CHUNKS` plain chunks and then one in :data:`RACE_EVERY` are read both ways and
+    timed, and the way that took less time over all of those reads the others; a short file
+    is read the vectorised way. Both give the same numbers to the last bit (correctly rounded
+    conversions of the same texts), so the choice changes only the time. ``clock`` is the
+    timer (seconds)."""
+
+    def __init__(
+        self, layout: _Layout, shown: str, race: bool,
+        clock: Callable[[], float] = time.perf_counter,
+    ) -> None:
+        self._layout, self._shown, self._clock = layout, shown, clock
+        self._race = race
+        #: True while plain chunks go to the vectorised readers, False for numpy's parser
+        self.vectorised = True
+        #: seconds each way took on the chunks raced: (vectorised, numpy's parser)
+        self.spent = [0.0, 0.0]
+        self.raced = 0
+        self._seen = 0
+
+    def scan(self, chunk: _Chunk) -> tuple[np.ndarray | None, np.ndarray]:
+        self._seen += 1
+        due = self._race and (
+            self.raced < RACE_CHUNKS or self._seen % RACE_EVERY == 0
+        )
+        if not due:
+            return _scan_chunk(chunk, self._layout, self._shown, self.vectorised)
+        t0 = self._clock()
+        f = _plain_fields(chunk, self._layout)
+        got = _read_plain(chunk, f, self._layout, self._shown) if f is not None else None
+        if got is None:  # not plain: numpy's parser either way
+            return _scan_chunk(chunk, self._layout, self._shown, False)
+        t1 = self._clock()
+        _parse_columns(chunk, self._layout, self._shown, plain=True)
+        t2 = self._clock()
+        self.spent[0] += t1 - t0
+        self.spent[1] += t2 - t1
+        self.raced += 1
+        if self.raced >= RACE_CHUNKS:
+            self.vectorised = self.spent[0] <= self.spent[1]
+        return got
 
 
 def _line_of_row(path: Path, layout: _Layout, row: int) -> int:
@@ -882,7 +994,7 @@ def _line_of_row(path: Path, layout: _Layout, row: int) -> int:
         for k, line in enumerate(chunk.raw.decode("latin-1").split("\n")):
             if _clean(line, layout):
                 if seen == row:
-                    return chunk.first_line + k
+                    return chunk.line + k
                 seen += 1
     return layout.data_line + row
 
@@ -942,13 +1054,14 @@ def _scan(
 ) -> tuple[int, ClockFit | None]:
     """The checking pass: parse every row, count them, fit the time column; the channels'
     values go to ``spool``; ``progress(bytes done, bytes in all)`` after each chunk."""
-    size = path.stat().st_size if progress is not None else 0
+    size = path.stat().st_size
     clock = RegularClock(resolution=layout.resolution) if use_clock else None
+    scanner = _ChunkScanner(layout, shown, race=size > RACE_ABOVE * CHUNK_BYTES)
     n = 0
     t_first = math.nan
     try:
-        for chunk in _chunks(path, layout):
-            stamps, values = _scan_chunk(chunk, layout, shown)
+        for chunk in _chunks(path, layout, count_lines=False):
+            stamps, values = scanner.scan(chunk)
             if progress is not None:
                 progress(chunk.offset + len(chunk.raw), size)
             if spool is not None and spool.ok and values.shape[0]:
