@@ -371,7 +371,7 @@ def test_the_checking_pass_reads_the_faster_way_and_the_same_numbers(
     vectorised readers and numpy's parser) and timed, and the way that took less reads the
     others. The choice must follow the times, and either way the values must be the ones
     numpy's own text loader reads, to the last bit."""
-    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 16 * 1024)  # about 60 chunks
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 4 * 1024)  # about 240 chunks
     path, _ = _long_csv(tmp_path)
     # source: numpy.loadtxt reads the same text (header line skipped, time column dropped)
     want = np.loadtxt(path, delimiter=",", skiprows=1, usecols=(1, 2))
@@ -407,10 +407,11 @@ def test_the_checking_pass_reads_the_faster_way_and_the_same_numbers(
             got = np.concatenate([b.data for b in src.blocks(4096)])
         monkeypatch.setattr(scopecsv, "_ChunkScanner", base)
         scanner = made[0]
-        chunks = -(-path.stat().st_size // (16 * 1024))
+        chunks = -(-path.stat().st_size // (4 * 1024))
         assert scanner.vectorised is not numpy_faster
-        # the first three chunks and about one in 16 after them were raced
-        assert scopecsv.RACE_CHUNKS + 2 <= scanner.raced <= scopecsv.RACE_CHUNKS + chunks // 16
+        # the first three chunks and about one in RACE_EVERY after them were raced
+        every = scopecsv.RACE_EVERY
+        assert scopecsv.RACE_CHUNKS + 2 <= scanner.raced <= scopecsv.RACE_CHUNKS + chunks // every
         other = numpy_reads if not numpy_faster else plain_reads
         assert len(other) == scanner.raced  # the slower way read only the raced chunks
         assert len(plain_reads) + len(numpy_reads) >= chunks + scanner.raced - 1

@@ -937,7 +937,7 @@ RACE_ABOVE = 8
 RACE_CHUNKS = 3
 #: after that, one chunk in this many is read both ways again (the values of a capture, and so
 #: the faster way, can change along it)
-RACE_EVERY = 16
+RACE_EVERY = 64
 
 
 class _ChunkScanner:
