@@ -386,19 +386,19 @@ class HallFrontEnd(SampleFeed):
         # the moves as runs of consecutive samples (a flank moves a few in a row)
         at = moves.at
         brk = np.flatnonzero(np.diff(at) != 1)
-        run_first = np.concatenate((at[:1], at[brk + 1]))
         run_last = np.concatenate((at[brk], at[-1:]))
+        # the first sample of each run, and past the last one a run that never comes
+        run_first = np.concatenate((at[:1], at[brk + 1], [np.iinfo(np.int64).max]))
         for starts, high in ((high_side, True), (low_side, False)):
             # no move from sample start + W to the end of the stretch: the first run that ends
             # at or after start + W begins after the stretch (or there is none)
-            j = np.searchsorted(run_last, starts + W)
-            nxt = np.append(run_first, np.iinfo(np.int64).max)[j]
+            nxt = run_first[np.searchsorted(run_last, starts + W)]
             clean &= nxt >= starts + max(P, W)
             # the lowest (highest) bin of the first W samples
             pick = np.minimum if high else np.maximum
             edge = buf[starts]
-            for j in range(1, head):
-                edge = pick(edge, buf[starts + j])
+            for k in range(1, head):
+                edge = pick(edge, buf[starts + k])
             edge = np.right_shift(edge, moves.shift)
             if high:
                 clean &= edge * unit > mid

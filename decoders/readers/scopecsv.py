@@ -885,9 +885,13 @@ def _few_values(f: _Fields, cols: Sequence[int]) -> np.ndarray | None:
     return out
 
 
+def _no_quote_or_comment(chunk: _Chunk, layout: _Layout) -> bool:
+    return b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
+
+
 def _plain_fields(chunk: _Chunk, layout: _Layout) -> _Fields | None:
     """The fields of a plain chunk whose first column is the time (see :class:`_Fields`)."""
-    if layout.time_col != 0 or b'"' in chunk.raw or _has_comment(chunk.raw, layout):
+    if layout.time_col != 0 or not _no_quote_or_comment(chunk, layout):
         return None
     return _fields(chunk.raw, layout)
 
@@ -926,8 +930,7 @@ def _scan_chunk(
     if vectorised and (f := _plain_fields(chunk, layout)) is not None:
         if (got := _read_plain(chunk, f, layout, shown)) is not None:
             return got
-    plain = b'"' not in chunk.raw and not _has_comment(chunk.raw, layout)
-    return _parse_columns(chunk, layout, shown, plain)
+    return _parse_columns(chunk, layout, shown, _no_quote_or_comment(chunk, layout))
 
 
 #: a file of more than this many chunks has plain chunks read both ways (see
