@@ -372,6 +372,7 @@ def test_the_checking_pass_reads_the_faster_way_and_the_same_numbers(
     others. The choice must follow the times, and either way the values must be the ones
     numpy's own text loader reads, to the last bit."""
     monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 4 * 1024)  # about 240 chunks
+    monkeypatch.setattr(scopecsv, "_arrow_modules", lambda: None)  # numpy's parser, not pyarrow
     path, _ = _long_csv(tmp_path)
     # source: numpy.loadtxt reads the same text (header line skipped, time column dropped)
     want = np.loadtxt(path, delimiter=",", skiprows=1, usecols=(1, 2))
@@ -417,6 +418,141 @@ def test_the_checking_pass_reads_the_faster_way_and_the_same_numbers(
         assert len(plain_reads) + len(numpy_reads) >= chunks + scanner.raced - 1
         np.testing.assert_array_equal(got, want)
         assert got.tobytes() == want.tobytes()
+
+
+def _long_dialect(kind: str, n: int = 6000) -> tuple[str, np.ndarray]:
+    """A long capture's text in one of several dialects, and its channel values as Python
+    parses their text."""
+    rows, values = _table(n, 50_000.0)
+    if kind == "comma":
+        return "Time (s),CRK (V),CAM (V)\n" + "".join(",".join(r) + "\n" for r in rows), values
+    if kind == "crlf":
+        return "time,a,b\r\n" + "".join(",".join(r) + "\r\n" for r in rows), values
+    if kind == "semicolon, decimal comma":
+        body = "".join(";".join(c.replace(".", ",") for c in r) + "\n" for r in rows)
+        return "Sample rate;50000 Hz\n\nTime (s);Crank (V);Cam (V)\n" + body, values
+    if kind == "quoted, trailing delimiter":
+        body = "".join(",".join(f'"{c}"' for c in r) + ",\n" for r in rows)
+        return '"Time (s)","A (V)","B (V)",\n' + body, values
+    if kind == "tab, blank lines":
+        ends = ["\n\n" if i % 500 == 7 else "\n" for i in range(n)]
+        body = "".join("\t".join(r) + end for r, end in zip(rows, ends, strict=True))
+        return "t\tA\tB\n" + body, values
+    if kind == "sample index":
+        body = "".join(f"{i}," + ",".join(r[1:]) + "\n" for i, r in enumerate(rows))
+        return body, values
+    raise ValueError(kind)
+
+
+def _open_both_ways(
+    path: Path, monkeypatch: pytest.MonkeyPatch, **kw: object
+) -> tuple[tuple[object, np.ndarray] | str, tuple[object, np.ndarray] | str, int]:
+    """What opening ``path`` gives (info and data, or the error's words) with pyarrow's reader
+    and with numpy's parser alone, and how many times numpy's parser read it in the first."""
+    numpy_rows = scopecsv._numpy_rows
+    used: list[int] = []
+    monkeypatch.setattr(
+        scopecsv, "_numpy_rows", lambda *a: used.append(1) or numpy_rows(*a)
+    )
+    out = []
+    for arrow in (True, False):
+        if not arrow:
+            monkeypatch.setattr(scopecsv, "_arrow_modules", lambda: None)
+        try:
+            out.append(_read(path, block_size=777, **kw))
+        except CaptureError as exc:
+            out.append(str(exc))
+    monkeypatch.undo()
+    return out[0], out[1], len(used) - 1  # the second open always used numpy's parser
+
+
+@pytest.mark.parametrize(
+    "kind",
+    ["comma", "crlf", "semicolon, decimal comma", "quoted, trailing delimiter",
+     "tab, blank lines", "sample index"],
+)
+def test_a_long_csv_read_by_pyarrow_is_what_numpy_reads(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, kind: str
+) -> None:
+    """A long file (over RACE_ABOVE chunks) is read by pyarrow's CSV reader when it is
+    installed: the capture it describes must be the one numpy's parser reads, to the last bit,
+    in every dialect the reader handles."""
+    pytest.importorskip("pyarrow")
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 4 * 1024)
+    text, values = _long_dialect(kind)
+    path = _write(tmp_path, "long.csv", text)
+    kw = {"sample_rate": 50_000.0} if kind == "sample index" else {}
+    by_arrow, by_numpy, numpy_reads = _open_both_ways(path, monkeypatch, **kw)
+    assert numpy_reads == 0  # pyarrow's reader read it all
+    assert not isinstance(by_arrow, str) and not isinstance(by_numpy, str)
+    assert by_arrow[0] == by_numpy[0]
+    assert by_arrow[1].tobytes() == by_numpy[1].tobytes()
+    # source: Python's float() of each text (correctly rounded, as numpy's loader is)
+    np.testing.assert_array_equal(by_arrow[1], values)
+    assert by_arrow[0].sample_rate == 50_000.0 and by_arrow[0].n_samples == len(values)
+
+
+@pytest.mark.parametrize(
+    "kind,line",
+    [
+        ("a comment among the numbers", "# trigger re-armed"),
+        ("text in a row", "{t},1.5,overload"),
+        ("a field missing", "{t},1.5"),
+        ("a field too many", "{t},1.5,2,3"),
+        ("an empty field", "{t},,2"),
+        ("not a number", "{t},nan,2"),
+        ("spaces around a number", "{t}, 1.5 ,2"),
+        ("a stamp out of step", "{late},1.5,2"),
+    ],
+)
+def test_pyarrow_leaves_to_numpy_what_numpy_must_judge(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, kind: str, line: str
+) -> None:
+    """Whatever pyarrow's reader would read otherwise than numpy's parser, or not at all, is
+    left to numpy's parser: the file must give exactly what it gives without pyarrow, the
+    same capture or the same error naming the same line."""
+    pytest.importorskip("pyarrow")
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 4 * 1024)
+    rows, _ = _table(6000, 50_000.0)
+    lines = [",".join(r) for r in rows]
+    k = 4321
+    lines[k] = line.format(t=rows[k][0], late=f"{(k + 0.5) / 50_000.0:.9f}")
+    path = _write(tmp_path, "odd.csv", "time,a,b\n" + "\n".join(lines) + "\n")
+    by_arrow, by_numpy, numpy_reads = _open_both_ways(path, monkeypatch)
+    if isinstance(by_numpy, str):
+        assert by_arrow == by_numpy
+        assert f"line {k + 2}" in by_numpy or "comment" in kind
+    else:
+        assert not isinstance(by_arrow, str)
+        assert by_arrow[0] == by_numpy[0] and by_arrow[1].tobytes() == by_numpy[1].tobytes()
+    if kind in ("a stamp out of step", "spaces around a number"):
+        # read by pyarrow's reader to the end (the stamp's error is the time column's, the
+        # spaces both readers pass over)
+        assert numpy_reads == 0
+    else:
+        assert numpy_reads == 1  # pyarrow's reader declined the file; numpy's parser read it
+
+
+def test_without_pyarrow_a_long_csv_is_read_by_numpy(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Without pyarrow (it is an optional extra) a long file is read by numpy's parser."""
+    import builtins
+
+    monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 4 * 1024)
+    real_import = builtins.__import__
+
+    def no_pyarrow(name: str, *a: object, **k: object) -> object:
+        if name.startswith("pyarrow"):
+            raise ImportError(name)
+        return real_import(name, *a, **k)
+
+    monkeypatch.setattr(builtins, "__import__", no_pyarrow)
+    assert scopecsv._arrow_modules() is None
+    text, values = _long_dialect("comma")
+    info, data = _read(_write(tmp_path, "long.csv", text))
+    np.testing.assert_array_equal(data, values)
+    assert info.n_samples == len(values)
 
 
 def test_the_spool_gives_what_the_text_says(tmp_path: Path, monkeypatch) -> None:
