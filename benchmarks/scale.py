@@ -19,7 +19,8 @@ What it does:
    page cache is warm for both); reads it in one piece as well when it fits ``--one-shot-mb``;
    reports both times, their ratio and the decode's peak resident memory (``ru_maxrss``);
 3. for the CSV: times toothcomb's parse of the whole file (done once, when it is opened: every
-   row checked, the clock fitted, the values spooled for the decode's passes) against
+   row checked, the clock fitted, the values spooled for the decode's passes; by pyarrow's CSV
+   reader when the ``fast-csv`` extra is installed, else by numpy's parser) against
    ``numpy.loadtxt`` on its first ``--loadtxt-rows`` rows (rows per second), the spooled values
    read back, and the decode's time and peak memory;
 4. with ``--profile``: decodes each WAV once more under cProfile and prints the share of each
@@ -191,7 +192,9 @@ with open(path) as f:
 t0 = time.perf_counter()
 x = np.loadtxt(path, delimiter=",", skiprows=skip, max_rows=rows, ndmin=2)
 t_np = time.perf_counter() - t0
+from toothcomb.decoders.readers.scopecsv import _arrow_modules
 print(json.dumps({"rows": n, "open_s": t_open, "blocks_s": t_blocks,
+                  "arrow": _arrow_modules() is not None,
                   "loadtxt_rows": int(x.shape[0]), "loadtxt_s": t_np,
                   "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}))
 """
@@ -335,8 +338,10 @@ def main(argv: list[str] | None = None) -> int:
             theirs = p["loadtxt_rows"] / p["loadtxt_s"]
             print(f"\nscope CSV, {seconds:g} s at {rate:g} Hz ({size:.0f} MB, {p['rows']} rows, "
                   f"made in {made:.0f} s)")
-            print(f"  parse (open: every row parsed once, in 2 MB chunks, checked, the clock "
-                  f"fitted, the values spooled): {p['open_s']:.1f} s, {ours / 1e6:.2f} M rows/s, "
+            how = ("by pyarrow's CSV reader (the fast-csv extra)" if p.get("arrow")
+                   else "by numpy's parser or the vectorised readers, in 2 MB chunks")
+            print(f"  parse (open: every row parsed once {how}, checked, the clock fitted, the "
+                  f"values spooled): {p['open_s']:.1f} s, {ours / 1e6:.2f} M rows/s, "
                   f"{size / p['open_s']:.0f} MB/s")
             print(f"  numpy.loadtxt on its first {p['loadtxt_rows']} rows: {p['loadtxt_s']:.1f} s, "
                   f"{theirs / 1e6:.2f} M rows/s; ours/loadtxt {ours / theirs:.2f}")
