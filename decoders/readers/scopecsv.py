@@ -1107,7 +1107,7 @@ def _arrow_rows(
         chans = layout.channel_cols
         # the reader reads ahead, so the bytes parsed are counted in blocks (each about one
         # block of text; the end of the file is reported once all is read)
-        done = layout.data_offset
+        done, last = layout.data_offset, f.size() - 1
         for batch in reader:
             done += read.block_size
             cols = [batch.column(i).to_numpy(zero_copy_only=False) for i in range(n)]
@@ -1117,7 +1117,7 @@ def _arrow_rows(
             for j, c in enumerate(chans):
                 values[:, j] = cols[c]
             t = cols[layout.time_col] if layout.time_col is not None else None
-            yield t, values, min(done, f.size() - 1)
+            yield t, values, min(done, last)
     except pa.ArrowException:
         raise _ArrowDeclined from None
     finally:
