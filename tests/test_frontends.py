@@ -502,6 +502,8 @@ def test_hall_bin_moves_are_the_definition():
             m = hall_mod._bin_moves(codes, W, thr)
             assert m is not None
             assert 2**m.shift <= min(thr, 2 ** (8 * codes.itemsize - 1))
+            # source: Python's >> on int is floor division by 2**shift (The Python Language
+            # Reference, "Shifting operations"), the bin definition computed apart from numpy
             bins = [int(v) >> m.shift for v in codes]
             want = [i for i in range(W, len(codes)) if bins[i] != bins[i - W]]
             assert m.at.tolist() == want
