@@ -1277,7 +1277,7 @@ def _result(
         rpm=rpm,
         revolutions=int(stats.deg // 360.0),
         sync_losses=stats.losses,
-        reference_times_s=tuple(float(x) for x in stats.reference_times),
+        reference_times_s=tuple(np.asarray(stats.reference_times, dtype=float).tolist()),
         extra_teeth=stats.extra,
         missing_teeth=stats.missing,
         jitter=jitter.result(),

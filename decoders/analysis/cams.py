@@ -37,6 +37,11 @@ from .timeline import CrankTimeline
 SPLIT_DEG = 20.0
 
 
+def _floats(x: np.ndarray) -> list[float]:
+    """``x`` as Python floats (the values ``float()`` gives one by one, in one call)."""
+    return np.asarray(x, dtype=float).tolist()
+
+
 def run_shift(run: np.ndarray, shift: dict[int, int]) -> np.ndarray:
     """Each event's revolution shift, by its sync run (0 for a run ``shift`` does not name).
 
@@ -439,7 +444,7 @@ def build_cam_result(
                 direction="rising" if c.direction > 0 else "falling",
                 angle=stats,
                 revolution=revolution,
-                events=tuple((float(t), float(x)) for t, x in zip(ev.times[m], a, strict=True)),
+                events=tuple(zip(_floats(ev.times[m]), _floats(a), strict=True)),
                 jitter=jit,
                 window=window,
             )

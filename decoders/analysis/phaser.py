@@ -136,6 +136,8 @@ def _zigzag(s: np.ndarray, h: float) -> list[int]:
     n = len(s)
     if n == 0:
         return []
+    # Python floats: the same sums and comparisons, without a numpy scalar per look
+    s = np.asarray(s, dtype=float).tolist()
     pivots = [0]
     direction, ext, i_hi, i_lo = 0, 0, 0, 0
     for i in range(1, n):
@@ -455,10 +457,10 @@ def analyse_phase_trace(
         base_shift_deg=shift,
         moves=tuple(out_moves),
         holds=tuple(holds),
-        time_s=tuple(float(x) for x in t),
-        phase_deg=tuple(float(x) for x in p),
-        rpm=tuple(float(x) for x in rpm),
-        edge=tuple(int(x) for x in edge),
+        time_s=tuple(t.tolist()),
+        phase_deg=tuple(p.tolist()),
+        rpm=tuple(rpm.tolist()),
+        edge=tuple(edge.tolist()),
         dropped=dropped,
         dropped_rule=_outlier_rule(lim),
         authority_deg=authority,
