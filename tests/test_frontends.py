@@ -670,3 +670,123 @@ def test_hall_plateau_levels_are_numpys_median_and_mean():
             got = hall_mod._plateau_level(data, first, w)
             assert got.dtype == np.float64
             np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("codes", [False, True])
+@pytest.mark.parametrize("switch_at", [0, 150_001])
+def test_hall_one_direction_gives_the_edges_of_both_less_the_others(codes, switch_at):
+    """A front end told to give out only one direction (:meth:`HallFrontEnd.only_direction`)
+    leaves most flanks of the other untimed; what it gives must be, to the last bit, the
+    flanks of that direction a front end giving both gives, also where flanks crowd together
+    (pulses a few samples wide, a slow flank whose run breaks in two, spikes) so that the
+    order check between neighbours has to look at them all."""
+    rng = np.random.default_rng(41)
+    n = 300_000
+    W = 4
+    x = np.zeros(n)
+    level, i = 0.0, 200
+    while i < n - 200:
+        kind = rng.random()
+        if kind < 0.55:  # an ordinary flank, 40 to 400 samples after the last
+            level = 1.0 - level
+            x[i:] = level
+            i += int(rng.integers(40, 400))
+        elif kind < 0.8:  # a pulse 1 to 12 samples wide (flanks closer than the window)
+            w = int(rng.integers(1, 13))
+            x[i : i + w] = 1.0 - level
+            i += w + int(rng.integers(1, 3 * W))
+        else:  # a slow flank over 6 to 20 samples, noisy enough to break its run
+            w = int(rng.integers(6, 21))
+            level = 1.0 - level
+            x[i : i + w] = np.linspace(1.0 - level, level, w)
+            x[i + w :] = level
+            i += w + int(rng.integers(40, 300))
+    x += rng.normal(0, 0.04, n)
+    x[rng.integers(0, n, 300)] += rng.choice([-1.5, 1.5], 300)  # spikes
+    q = np.round(np.clip(x / 2.0, -1, 1 - 2**-15) * 2**15).astype(np.int16)
+    values = q * 2.0**-15
+    lv = levels_of(values)
+    opts = {"window": W, "plateau": 1, "persist": 0}
+    spy: list[np.ndarray] = []
+    real = HallFrontEnd._to_time
+
+    def to_time(self, s, e, sign):
+        timed = real(self, s, e, sign)
+        spy.append(timed[:-1] & (sign[:-1] != self._wanted))
+        return timed
+
+    for d in (1, -1):
+        both = HallFrontEnd(1e5, lv, **opts)
+        one = HallFrontEnd(1e5, lv, **opts)
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(HallFrontEnd, "_to_time", to_time)
+            got = []
+            for fe in (both, one):
+                parts = []
+                for i in range(0, n, 9001):
+                    if fe is one and i >= switch_at and fe._wanted == 0:
+                        # as a decode does: what the first seconds found is released, then
+                        # the tracker follows one direction
+                        parts.append(fe.release())
+                        fe.only_direction(d)
+                    block = q[i : i + 9001] if codes else values[i : i + 9001]
+                    parts.append(
+                        fe.process_codes(block, i, 2.0**-15) if codes else fe.process(block, i)
+                    )
+                parts.append(fe.finish())
+                got.append(Edges.concat(parts))
+        a, b = got
+        want = a.select(a.direction == d)
+        mine = b.select(b.direction == d)
+        assert len(want) > 1000
+        np.testing.assert_array_equal(mine.times, want.times)
+        np.testing.assert_array_equal(mine.strength, want.strength)
+        # what came out of the other direction (before the switch) is the first of those
+        others = b.select(b.direction != d)
+        assert (len(others) > 0) == (switch_at > 0)
+        np.testing.assert_array_equal(
+            others.times, a.select(a.direction != d).times[: len(others)]
+        )
+        # most flanks of the other direction were left untimed, and some had to be timed
+        # because a neighbour crowded them
+        assert 0 < int(np.count_nonzero(np.concatenate(spy))) < 0.5 * len(a)
+        spy.clear()
+
+
+def test_hall_flanks_left_untimed_cannot_change_the_order_check():
+    """:meth:`HallFrontEnd._to_time` leaves a flank of the other direction untimed only where
+    no position inside the flanks' stretches ``[s - W, e + 1]`` could make it matter to
+    :func:`_ordered_edges`. Checked on crowded flanks (runs a few samples apart, repeats of a
+    direction) at random positions inside their stretches, found in several searches: the
+    order check over the flanks timed, then one direction kept, is the check over all of them,
+    then that direction kept."""
+    rng = np.random.default_rng(43)
+    W = 5
+    fe = HallFrontEnd(1e5, levels_of(np.r_[0.0, 1.0]), window=W)
+    untimed = crowded = 0
+    for _ in range(300):
+        m = 60
+        s = np.cumsum(rng.integers(1, 3 * W, m))
+        e = s + rng.integers(0, W, m)
+        s[1:] = np.maximum(s[1:], e[:-1] + 1)  # runs do not overlap
+        e = np.maximum(e, s)
+        # alternating mostly, with a direction repeated now and then (a flank found twice)
+        sign = np.where(np.cumsum(rng.random(m) < 0.8) % 2 == 0, 1, -1).astype(np.int8)
+        # anywhere in the stretch, a third of them on either end of it
+        pos = np.choose(rng.integers(0, 3, m), [rng.uniform(s - W, e + 1.0), s - W, e + 1.0])
+        step = np.ones(m)
+        full = hall_mod._ordered_edges(None, pos, sign, step, W)
+        for d in (1, -1):
+            fe.only_direction(d)
+            last, out = None, []
+            for part in np.array_split(np.arange(m), rng.integers(1, 4)):
+                timed = fe._to_time(s[part], e[part], sign[part])
+                idx = part[timed]
+                other = sign[part] != d
+                untimed += int(np.count_nonzero(other & ~timed))
+                crowded += int(np.count_nonzero(other[:-1] & timed[:-1]))
+                p_, s_, _, last = hall_mod._ordered_edges(last, pos[idx], sign[idx], step[idx], W)
+                out.append(p_[s_ == d])
+            np.testing.assert_array_equal(np.concatenate(out), full[0][full[1] == d])
+    # both ways were taken many times
+    assert untimed > 1000 and crowded > 1000
