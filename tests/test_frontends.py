@@ -790,3 +790,35 @@ def test_hall_flanks_left_untimed_cannot_change_the_order_check():
             np.testing.assert_array_equal(np.concatenate(out), full[0][full[1] == d])
     # both ways were taken many times
     assert untimed > 1000 and crowded > 1000
+
+
+def test_vr_peaks_of_stretches_by_side_are_the_two_reductions():
+    """The VR front end's half-wave peaks on signed codes come from one reduction over the
+    samples with those below the offset bit-flipped: they must be what the highest and lowest
+    sample of each stretch give, also for a first and a last stretch that hold crossings of
+    their own (not looked at yet)."""
+    rng = np.random.default_rng(47)
+    fe = VrFrontEnd.__new__(VrFrontEnd)
+    for dtype in (np.int16, np.int32):
+        for _ in range(200):
+            n = int(rng.integers(50, 400))
+            x = rng.integers(-3000, 3000, n).astype(dtype)
+            fe._off = float(rng.uniform(-500, 500))
+            fe._unit = 2.0**-15
+            side = x > math.floor(fe._off)
+            cross = np.flatnonzero(side[:-1] != side[1:]) + 1
+            if len(cross) < 6:
+                continue
+            # stretches from one crossing to the next, but the first and last hold some of
+            # their own
+            i0 = int(rng.integers(1, 3))
+            i1 = len(cross) - int(rng.integers(1, 3))
+            at = np.concatenate(([0], cross[i0:i1]))
+            got = fe._peaks_by_side(x, side, at)
+            ends = np.append(at[1:], n)
+            # the definition, stretch by stretch, in Python integers and floats
+            want = [
+                max(int(x[i:j].max()) - fe._off, fe._off - int(x[i:j].min()), 0.0) * fe._unit
+                for i, j in zip(at, ends, strict=True)
+            ]
+            np.testing.assert_array_equal(got, want)

@@ -454,9 +454,12 @@ class VrFrontEnd(SampleFeed):
         if np.any(full):
             part = buf[a : a + length]
             at = starts[full]
-            hi = np.maximum.reduceat(part, at) - o
-            lo = o - np.minimum.reduceat(part, at)
-            seg[full] = np.maximum(np.maximum(hi, lo), 0.0) * self._unit
+            if part.dtype.kind == "i" and len(at) > 2:
+                seg[full] = self._peaks_by_side(part, positive[a : a + length], at)
+            else:
+                hi = np.maximum.reduceat(part, at) - o
+                lo = o - np.minimum.reduceat(part, at)
+                seg[full] = np.maximum(np.maximum(hi, lo), 0.0) * self._unit
         self._scanned = g + b
         if self._open_sign == 0:
             self._open_sign = 1 if positive[0] else -1
@@ -481,6 +484,29 @@ class VrFrontEnd(SampleFeed):
         self._p_after.append(np.where(positive[kk + 1], 1, -1))
         self._p_peak.append(seg[1:])
         self._pending += len(kk)
+
+    def _peaks_by_side(self, part: np.ndarray, side: np.ndarray, at: np.ndarray) -> np.ndarray:
+        """For signed integer codes ``part`` above the offset where ``side``: the peak
+        ``max(highest - offset, offset - lowest, 0)`` of each stretch from ``at[j]`` to the
+        next (the last to the end), as the two reductions give it, in one: between two
+        crossings every sample lies on one side, and flipping the bits of those below (``~x``
+        is ``-x - 1``, which turns order round exactly) makes the highest flipped sample the
+        lowest one flipped. The first and last stretches may hold crossings not looked at yet
+        (before the next one due, after the last one decided): they are reduced both ways.
+
+        >>> fe = VrFrontEnd.__new__(VrFrontEnd); fe._off, fe._unit = 0.5, 1.0
+        >>> x = np.array([9, -2, 3, 4, -5, -7, 2, 8], np.int16)
+        >>> fe._peaks_by_side(x, x > 0, np.array([0, 2, 4, 6])).tolist()
+        [8.5, 3.5, 7.5, 7.5]
+        """
+        o = self._off
+        # all bits set below the offset, none above: an exclusive or flips those below
+        flip = np.subtract(side.view(np.int8), np.int8(1))
+        top = np.maximum.reduceat(part ^ flip, at)
+        peak = np.where(side[at], top - o, o - ~top)
+        for j, piece in ((0, part[at[0] : at[1]]), (len(at) - 1, part[at[-1] :])):
+            peak[j] = max(piece.max() - o, o - piece.min())
+        return np.maximum(peak, 0.0) * self._unit
 
     def _close_pending(self) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
         """Time the crossings found so far and close the half-waves they end, in order; the
