@@ -74,14 +74,6 @@ class EdgePass:
         """Follow only ``channels`` (in either map) from the next block on."""
         self._wanted = frozenset(channels)
 
-    def only_direction(self, channel: int, direction: int) -> None:
-        """Have ``channel``'s front end give out only edges of ``direction`` from its next
-        search on, where it can (a front end with ``only_direction``; the others give both)."""
-        fe = self._frontends.get(channel)
-        only = getattr(fe, "only_direction", None)
-        if only is not None:
-            only(direction)
-
     # -- the work itself: a plain loop over the blocks --
 
     def _batches(self) -> Iterator[EdgeBatch]:

@@ -701,8 +701,6 @@ def decode_capture(
         maybe_pwm = {c: pwm_plugin() for c in cams if c in as_pwm}
         followed = {c for c in [crank, *cams, *pwm] if c in live}
         edge_pass.keep(followed | set(maybe_pwm))
-        # the tooth tracker follows one direction of crank edges (below, from here on)
-        edge_pass.only_direction(crank, plan.direction)
         state: dict[int, _CamState] = {c: _CamState() for c in cams}
         for c in cams:
             if looks[c].kind == "vr":

@@ -115,8 +115,6 @@ class HallFrontEnd(SampleFeed):
         self._thr = self.threshold
         self._thr_steps: float = self.threshold
         self._dense = False  # whether the last search found steps in most stretches
-        #: the only direction of flank given out (0: both; see :meth:`only_direction`)
-        self._wanted = 0
 
     @classmethod
     def calibrate(
@@ -211,23 +209,6 @@ class HallFrontEnd(SampleFeed):
         pos, sign, step, self._last = _ordered_edges(self._last, pos, sign, step, self.window)
         return pos, sign, step
 
-    def only_direction(self, direction: int) -> None:
-        """From the next search on, give out only the flanks of ``direction`` (+1 rising, -1
-        falling; 0: both again), for a caller that follows one direction: the others are
-        still found and judged (:attr:`rejected` and which flanks exist do not change) but,
-        where that cannot change a flank given out, not timed. The flanks given out are
-        exactly those of that direction a front end giving both gives.
-
-        A flank is timed inside its stretch ``[s - W, e + 1]`` (:meth:`_time_pending`), so one
-        whose stretch starts at least ``W`` samples after the previous flank's ends comes
-        strictly after it and is no repeat of it (:func:`_ordered_edges` keeps it, whatever
-        came before). A flank of the other direction is left untimed when the flank after it is
-        that far from it (its own place in the order then changes nothing given out); the
-        others are timed and ordered as always, then dropped."""
-        if direction not in (-1, 0, 1):
-            raise ValueError(f"a direction is -1, 0 or +1, not {direction!r}")
-        self._wanted = int(direction)
-
     @property
     def settled_s(self) -> float:
         """No edge earlier than this time (s) will come out of later calls."""
@@ -321,13 +302,6 @@ class HallFrontEnd(SampleFeed):
                 pre, post = pre[held], post[held]
                 if len(s) == 0:
                     return
-        if self._wanted:
-            timed = self._to_time(s, e, sign)
-            if not timed.all():
-                s, e, sign, lo, hi, step = (
-                    s[timed], e[timed], sign[timed], lo[timed], hi[timed], step[timed]
-                )
-                pre, post = pre[timed], post[timed]
         spiky = buf is not raw
         if spiky:
             # levels as recorded, unless a spike sits in them (then the cleaned ones)
@@ -347,20 +321,6 @@ class HallFrontEnd(SampleFeed):
             stretch.append(_rows(buf, s - W, span, clip=True))
         self._pend.append((s + g, e - s, sign, step, 0.5 * (lo + hi), stretch))
         self._waiting += len(s)
-
-    def _to_time(self, s: np.ndarray, e: np.ndarray, sign: np.ndarray) -> np.ndarray:
-        """Per flank found (first and last sample ``s``, ``e`` of its run, in order): whether
-        it must be timed when only flanks of :attr:`_wanted` are given out (see
-        :meth:`only_direction`)."""
-        # kept whatever came before: its stretch starts W or more after the last one's ends
-        clear = (s[1:] - self.window) - (e[:-1] + 1) >= self.window
-        # a flank that is not clear is checked against the last one kept before it: the one
-        # before it, or (when that one is not kept, so not clear either) the one before that,
-        # and so on; the last one, for the next search's first
-        timed = sign == self._wanted
-        timed[:-1] |= ~clear
-        timed[-1] = True
-        return timed
 
     def _held(
         self, buf: np.ndarray, after: np.ndarray, before: np.ndarray, mid: np.ndarray,
@@ -469,9 +429,6 @@ class HallFrontEnd(SampleFeed):
             pos_med = (s - W + k_med) + _linear_at(stretch[1], k_med, mid)
             pos = np.where(ok, pos, pos_med)
         pos, sign, step = self._ordered(pos, sign, step)
-        if self._wanted:
-            keep = sign == self._wanted
-            pos, sign, step = pos[keep], sign[keep], step[keep]
         return Edges(pos / self.sample_rate, sign, step * self._unit)
 
 
