@@ -413,10 +413,14 @@ class CrankStats:
             if np.any(one):
                 self.min_pitch_period = min(self.min_pitch_period, float(dt[one].min()))
             self._thin(0.5 * (t[1:] + t[:-1])[same], rpm)
-        for run in np.unique(r):
-            sel = np.flatnonzero(r == run)
-            span = self._span.setdefault(int(run), [float(t[sel[0]]), float(a[sel[0]]), 0.0, 0.0])
-            span[2], span[3] = float(t[sel[-1]]), float(a[sel[-1]])
+        # each stretch of teeth of one run, in order: a run's span starts at its first tooth
+        # and ends at its last
+        cut = np.flatnonzero(r[1:] != r[:-1])
+        firsts = np.concatenate(([0], cut + 1)).tolist()
+        lasts = np.concatenate((cut, [len(r) - 1])).tolist()
+        for i0, i1 in zip(firsts, lasts, strict=True):
+            span = self._span.setdefault(int(r[i0]), [float(t[i0]), float(a[i0]), 0.0, 0.0])
+            span[2], span[3] = float(t[i1]), float(a[i1])
         self._last = (int(r[-1]), float(t[-1]), float(a[-1]), 0.0)
 
     def _thin(self, mid: np.ndarray, rpm: np.ndarray) -> None:
