@@ -697,6 +697,8 @@ def test_vr_peaks_of_stretches_by_side_are_the_two_reductions():
             got = fe._peaks_by_side(x, side, at)
             ends = np.append(at[1:], n)
             # the definition, stretch by stretch, in Python integers and floats
+            # source: Python's built-in max() and min() on ints (The Python Language Reference,
+            # "Value comparisons"), computed apart from numpy's reductions
             want = [
                 max(int(x[i:j].max()) - fe._off, fe._off - int(x[i:j].min()), 0.0) * fe._unit
                 for i, j in zip(at, ends, strict=True)
