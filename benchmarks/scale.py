@@ -15,8 +15,9 @@ What it does:
    every length in ``--minutes``; an HDF5 file (float32) of the longest length; a scope CSV of
    about ``--csv-mb`` megabytes (500 kS/s, 8-bit);
 2. in a fresh process per capture: reads the WAV with ``soundfile`` into float32 blocks of the
-   decoder's block size, decodes it, and repeats both (the faster of each pair counts, so the
-   page cache is warm for both); reads it in one piece as well when it fits ``--one-shot-mb``;
+   decoder's block size, decodes it, and repeats both ``--repeats`` times (the fastest read and
+   the fastest decode count: the page cache is warm for both, and a busy moment of the machine
+   drops out); reads it in one piece as well when it fits ``--one-shot-mb``;
    reports both times, their ratio and the decode's peak resident memory (``ru_maxrss``);
 3. for the CSV: times toothcomb's parse of the whole file (done once, when it is opened: every
    row checked, the clock fitted, the values spooled for the decode's passes; by pyarrow's CSV
@@ -278,7 +279,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sensors", nargs="+", default=["vr", "hall"], choices=["vr", "hall"],
                     help="crank sensors to simulate (default: vr hall)")
     ap.add_argument("--block-size", type=int, default=1 << 16, help="samples per block")
-    ap.add_argument("--repeats", type=int, default=2, help="read/decode pairs per capture")
+    ap.add_argument("--repeats", type=int, default=3, help="read/decode pairs per capture")
     ap.add_argument("--one-shot-mb", type=float, default=1200.0,
                     help="also time a one-piece read when the float32 array is this small")
     ap.add_argument("--csv-mb", type=float, default=1000.0, help="size of the scope CSV (MB)")
