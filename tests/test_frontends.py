@@ -602,7 +602,7 @@ def test_hall_binned_step_search_is_the_definition():
 
 
 def _steps_list_dense(x: np.ndarray, W: int, thr: float) -> list[tuple[int, int, int]]:
-    s, e, sign = hall_mod._steps(x, W, thr, dense=True)
+    s, e, sign = hall_mod._steps(x, W, thr, binned=False)
     return list(zip(s.tolist(), e.tolist(), sign.tolist(), strict=True))
 
 

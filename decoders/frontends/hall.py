@@ -246,12 +246,14 @@ class HallFrontEnd(SampleFeed):
         # searched by bins (_bin_moves); where the bins moved also bounds, for the persistence
         # check below, the stretches where levels must hold
         moves = None
-        if self._dense and buf.dtype.kind in "iu":
+        tried = self._dense and buf.dtype.kind in "iu"
+        if tried:
             moves = _bin_moves(buf, W, self._thr_steps)
         if moves is not None:
             s, e, sign = _steps_binned(buf, W, self._thr_steps, moves)
         else:
-            s, e, sign = _steps(buf, W, self._thr_steps)
+            # (the bins, once they declined, are not looked at again)
+            s, e, sign = _steps(buf, W, self._thr_steps, binned=not tried)
         # a crank's flanks come several to a stretch: its next search goes straight to them
         self._dense = len(s) * STRETCH > n
         g = self._buf_start
@@ -452,7 +454,7 @@ DENSE_PIECE = 1 << 16
 
 
 def _steps(
-    x: np.ndarray, W: int, threshold: float, dense: bool = False
+    x: np.ndarray, W: int, threshold: float, binned: bool = True
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Runs of steps ``|x[i] - x[i - W]| > threshold`` (``_step_runs`` of those differences):
     the index in ``x`` of the first and last sample of each run, and its direction.
@@ -462,9 +464,8 @@ def _steps(
     correctly rounded subtraction keeps that order), so only the other stretches are looked at:
     a channel with few flanks (a cam) costs little more than two reductions per sample. Integer
     codes are subtracted in the narrowest type that cannot wrap around. Where steps are dense
-    (a crank: several in every stretch; ``dense`` says the caller expects that, and the
-    stretches are then not looked at first), integer codes are searched by
-    :func:`_steps_binned`.
+    (a crank: several in every stretch), integer codes are searched by :func:`_steps_binned`,
+    unless ``binned`` is False (the caller found that it declines).
 
     >>> x = np.r_[np.zeros(5000), np.ones(5000)]
     >>> [a.tolist() for a in _steps(x, 2, 0.5)]
@@ -476,8 +477,6 @@ def _steps(
     if n <= W:
         return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
     ints = x.dtype.kind in "iu"
-    if dense and ints and (found := _steps_binned(x, W, threshold)) is not None:
-        return found
     C = STRETCH
     m = n // C
     if threshold < 0 or W > C or m < 4:
@@ -502,7 +501,7 @@ def _steps(
         return _runs(np.empty(0, dtype=np.intp), np.empty(0, dtype=bool))
     wide = _difference_type(x, hi.max(), lo.min()) if ints else x.dtype
     if 4 * len(j) > len(active):
-        if ints and (found := _steps_binned(x, W, threshold)) is not None:
+        if ints and binned and (found := _steps_binned(x, W, threshold)) is not None:
             return found
         return _steps_dense(x, W, threshold, wide)
     tail = len(j) and j[-1] == m  # the shorter last stretch
