@@ -256,9 +256,11 @@ class AudioSource(SourceBase):
         #: (:meth:`_raw_pieces`), which is what libsndfile gives, without its per-call cost
         self._raw = wav if (wav is not None and _plain_pcm16(wav, info)) else None
 
-    def _pieces(self, block_size: int, codes: bool = False) -> Iterator[np.ndarray]:
+    def _pieces(
+        self, block_size: int, codes: bool = False, start: int = 0
+    ) -> Iterator[np.ndarray]:
         if self._raw is not None:
-            yield from self._raw_pieces(self._raw, block_size, codes)
+            yield from self._raw_pieces(self._raw, block_size, codes, start)
             return
         try:
             handle = sf.SoundFile(self._path)
@@ -266,8 +268,10 @@ class AudioSource(SourceBase):
             raise CaptureError(f"{self.info.path}: cannot be reopened ({_reason(exc)})") from None
         self._handles.add(handle)
         try:
-            left = self._frames
-            pos = 0
+            if start:
+                handle.seek(start)
+            left = self._frames - start
+            pos = start
             while left > 0:
                 n = min(block_size, left)
                 try:
@@ -290,9 +294,12 @@ class AudioSource(SourceBase):
             handle.close()
             self._handles.discard(handle)
 
-    def _raw_pieces(self, wav: WavHeader, block_size: int, codes: bool) -> Iterator[np.ndarray]:
-        """The samples of a plain 16-bit PCM WAV, read straight from its data chunk: the
-        little-endian codes libsndfile reads as int16 (and scales as :meth:`_read` does)."""
+    def _raw_pieces(
+        self, wav: WavHeader, block_size: int, codes: bool, start: int = 0
+    ) -> Iterator[np.ndarray]:
+        """The samples of a plain 16-bit PCM WAV from frame ``start`` on, read straight from its
+        data chunk: the little-endian codes libsndfile reads as int16 (and scales as
+        :meth:`_read` does)."""
         try:
             handle = open(self._path, "rb")  # closed below, or by close()
         except OSError as exc:
@@ -302,9 +309,9 @@ class AudioSource(SourceBase):
         self._handles.add(handle)
         channels = self.info.n_channels
         try:
-            handle.seek(wav.data_offset)
-            left = self._frames
-            pos = 0
+            handle.seek(wav.data_offset + start * wav.block_align)
+            left = self._frames - start
+            pos = start
             while left > 0:
                 n = min(block_size, left)
                 raw = np.empty((n, channels), dtype="<i2")
@@ -356,16 +363,22 @@ class AudioSource(SourceBase):
         how = INTEGER_READ.get(self.info.subtype)
         return how[1] if how is not None else None
 
-    def code_blocks(self, block_size: int) -> Iterator[Block]:
+    def code_blocks(self, block_size: int, start: int = 0) -> Iterator[Block]:
         """The samples as the integers the file stores (value = code x :attr:`code_scale`),
         in blocks as :meth:`blocks` gives them, each channel contiguous: a decode finds edges
-        on them without first making a float of every sample."""
+        on them without first making a float of every sample.
+
+        ``start``, a multiple of ``block_size`` (or the end), skips the blocks before it (their
+        samples are not read): the blocks from there on are those a pass from the first sample
+        gives."""
         size = check_block_size(block_size)
         self._check_open()
         if self.code_scale is None:
             return
-        got = 0
-        for piece in self._pieces(size, codes=True):
+        if not 0 <= start <= self.info.n_samples or (start % size and start != self.info.n_samples):
+            raise ValueError(f"start {start} is not a block boundary inside the capture")
+        got = start
+        for piece in self._pieces(size, codes=True, start=start):
             yield Block(got, piece)
             got += piece.shape[0]
         if got != self.info.n_samples:
