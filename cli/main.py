@@ -305,6 +305,12 @@ def build_parser() -> argparse.ArgumentParser:
         default=DEFAULT_BLOCK_SIZE,
         help="samples read per block; the result does not depend on it (default: %(default)s)",
     )
+    g.add_argument(
+        "--one-process",
+        action="store_true",
+        help="decode in this process alone; by default a long capture's crank channel is "
+        "decoded in a second process beside it (Linux, two cores or more; same result)",
+    )
     _verdict_options(p)
     ph = p.add_argument_group("cam phaser")
     ph.add_argument(
@@ -675,6 +681,7 @@ def decode_options(args: argparse.Namespace) -> DecodeOptions:
         phaser_parked=bool(getattr(args, "phaser_parked", False)),
         valves=tuple(getattr(args, "valve", ()) or ()),
         valve_drive=getattr(args, "valve_drive", None),
+        worker_process=not getattr(args, "one_process", False),
     )
 
 

@@ -67,6 +67,9 @@ class StageProgress:
             TimeRemainingColumn(),
             console=console,
             transient=True,
+            # drawn from the calls alone: no thread of its own (a decode may fork a worker,
+            # which is safe only while the process runs one thread)
+            auto_refresh=False,
         )
         self._tasks: dict[str, TaskID] = {}
 
@@ -99,6 +102,8 @@ class StageProgress:
         if not self.shown and now - self._t0 >= self._show_after:
             self._progress.start()
             self.shown = True
+        if self.shown:
+            self._progress.refresh()
 
     def completed(self, what: str) -> float:
         """How far the stage ``what`` has come (for tests and scripts)."""

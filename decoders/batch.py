@@ -422,7 +422,8 @@ def decode_one(path: str, options: BatchOptions) -> Decoded:
     from .pipeline import decode_capture
 
     try:
-        result = decode_capture(path, options.decode)
+        # the batch keeps every core busy with captures of its own: no worker per capture
+        result = decode_capture(path, replace(options.decode, worker_process=False))
         if options.reference is not None:
             from .verdict import compare
 

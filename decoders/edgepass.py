@@ -23,6 +23,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
+from . import worker as _worker
 from .levels import FiniteWatch
 from .model import CaptureSource, Edges
 
@@ -69,10 +70,57 @@ class EdgePass:
         self._started = False
         #: index of the sample after the last block fed
         self.fed = 0
+        #: channels whose front ends are to go to a worker process (:meth:`hand_off`)
+        self._to_worker: frozenset[int] = frozenset()
+        self._worker: _worker.FrontEndWorker | None = None
+        #: the sample the worker took over at (None: no worker)
+        self.worker_start: int | None = None
+        self._rejected: dict[int, dict[int, int]] = {}
 
     def keep(self, channels: set[int]) -> None:
         """Follow only ``channels`` (in either map) from the next block on."""
         self._wanted = frozenset(channels)
+
+    def hand_off(self, channels: set[int], min_samples: int | None = None) -> None:
+        """Run the front ends of ``channels`` in a worker process from the next block on
+        (:mod:`toothcomb.decoders.worker`), when this process can fork one and at least
+        ``min_samples`` (default
+        :data:`~toothcomb.decoders.worker.MIN_SAMPLES`) samples are still to come; otherwise
+        nothing changes. The edges are the same either way. :meth:`release` and
+        :meth:`settled_s` are not available once a worker took over."""
+        self._to_worker = frozenset(channels)
+        self._worker_min = _worker.MIN_SAMPLES if min_samples is None else min_samples
+
+    def rejected(self, channel: int) -> dict[int, int]:
+        """The pulses the front end of ``channel`` rejected, by direction (where it counts
+        them; the worker's count where a worker ran it)."""
+        if channel in self._rejected:
+            return self._rejected[channel]
+        return dict(getattr(self._frontends[channel], "rejected", {}))
+
+    def _start_worker(self, start: int, by_codes: bool, scale: float | None) -> None:
+        """Fork the worker for :meth:`hand_off`'s channels at block ``start``, if it may be."""
+        theirs = {
+            c: fe
+            for c, fe in self._frontends.items()
+            if c in self._to_worker and (self._wanted is None or c in self._wanted)
+        }
+        self._to_worker = frozenset()
+        n = self._source.info.n_samples
+        if not (
+            theirs
+            and by_codes
+            and scale
+            and n - start >= self._worker_min
+            and start % self._block_size == 0
+            and _worker.starts_anywhere(self._source)
+            and _worker.can_fork()
+        ):
+            return
+        self._worker = _worker.FrontEndWorker(
+            self._source, theirs, start, scale, self._block_size
+        )
+        self.worker_start = start
 
     # -- the work itself: a plain loop over the blocks --
 
@@ -85,44 +133,71 @@ class EdgePass:
         )
         stream = src.code_blocks(self._block_size) if by_codes else src.blocks(self._block_size)
         settled: dict[int, float] | None = None
-        for block in stream:
-            data = block.data
-            self._watch.check(data)
+        try:
+            for block in stream:
+                data = block.data
+                self._watch.check(data)
+                if self._to_worker:
+                    self._start_worker(block.start, by_codes, scale)
+                worker = self._worker
+                wanted = self._wanted
+                theirs: dict[int, Edges] = {}
+                their_settled: dict[int, float] = {}
+                if worker is not None:
+                    stop, theirs, their_settled = worker.next()
+                    if stop != block.stop:
+                        raise RuntimeError(f"worker block ends at {stop}, not {block.stop}")
+                edges = {}
+                for c, fe in self._frontends.items():
+                    if c in theirs:
+                        edges[c] = theirs[c]
+                    elif wanted is None or c in wanted:
+                        col = data[:, c]
+                        edges[c] = (
+                            fe.process_codes(col, block.start, scale)
+                            if by_codes
+                            else fe.process(col, block.start)
+                        )
+                extra = {}
+                for c, fe in self._extra.items():
+                    if wanted is None or c in wanted:
+                        col = data[:, c] * scale if by_codes else data[:, c]
+                        extra[c] = fe.process(col, block.start)
+                self.fed = block.stop
+                # the front ends' settled times move only when they search what they gathered,
+                # which is when edges come out; an older (earlier) time is always a safe one
+                if settled is None or any(len(e) for e in edges.values()):
+                    settled = self._settled() | their_settled
+                yield EdgeBatch(block.stop, edges, extra, settled)
             wanted = self._wanted
-            edges = {}
-            for c, fe in self._frontends.items():
-                if wanted is None or c in wanted:
-                    col = data[:, c]
-                    edges[c] = (
-                        fe.process_codes(col, block.start, scale)
-                        if by_codes
-                        else fe.process(col, block.start)
-                    )
-            extra = {}
-            for c, fe in self._extra.items():
-                if wanted is None or c in wanted:
-                    col = data[:, c] * scale if by_codes else data[:, c]
-                    extra[c] = fe.process(col, block.start)
-            self.fed = block.stop
-            # the front ends' settled times move only when they search what they gathered,
-            # which is when edges come out; an older (earlier) time is always a safe one
-            if settled is None or any(len(e) for e in edges.values()):
-                settled = self._settled()
-            yield EdgeBatch(block.stop, edges, extra, settled)
-        wanted = self._wanted
-        yield EdgeBatch(
-            src.info.n_samples,
-            {c: fe.finish() for c, fe in self._frontends.items() if wanted is None or c in wanted},
-            {c: fe.finish() for c, fe in self._extra.items() if wanted is None or c in wanted},
-            self._settled(),
-            final=True,
-        )
+            final: dict[int, Edges] = {}
+            final_settled: dict[int, float] = {}
+            if self._worker is not None:
+                final, final_settled, self._rejected = self._worker.finish()
+                self._worker = None
+            yield EdgeBatch(
+                src.info.n_samples,
+                {
+                    c: final[c] if c in final else fe.finish()
+                    for c, fe in self._frontends.items()
+                    if c in final or wanted is None or c in wanted
+                },
+                {c: fe.finish() for c, fe in self._extra.items() if wanted is None or c in wanted},
+                self._settled() | final_settled,
+                final=True,
+            )
+        finally:
+            if self._worker is not None:
+                self._worker.close()
+                self._worker = None
 
     def release(self) -> EdgeBatch:
         """The edges the front ends can time from what they have been fed, without waiting for
         their batches to fill (those of a front end without ``release`` stay where they are).
         They are the edges the pass gives anyway: the front ends time their work in batches of
         any size."""
+        if self.worker_start is not None:
+            raise RuntimeError("a pass whose front ends went to a worker releases nothing early")
         wanted = self._wanted
 
         def out(fes: dict[int, Any]) -> dict[int, Edges]:
@@ -136,6 +211,8 @@ class EdgePass:
 
     def settled_s(self) -> float:
         """No edge of a followed channel earlier than this (s) is still to come."""
+        if self.worker_start is not None:
+            raise RuntimeError("a pass whose front ends went to a worker has no settled time")
         wanted = self._wanted
         return min(
             (
@@ -157,7 +234,18 @@ class EdgePass:
         if self._started:
             raise RuntimeError("an edge pass is iterated once")
         self._started = True
-        return self._batches()
+        self._gen = self._batches()
+        return self._gen
+
+    def close(self) -> None:
+        """End the pass where it is: its worker, if one runs, is stopped and waited for. A
+        decode that fails half-way calls it, so that no worker outlives it."""
+        gen = getattr(self, "_gen", None)
+        if gen is not None:
+            gen.close()
+        if self._worker is not None:
+            self._worker.close()
+            self._worker = None
 
 
 class Received:

@@ -39,3 +39,6 @@ class DecodeOptions:
     valves: tuple[str, ...] = ()
     #: "low-side" or "high-side" valve drive; None: told from the flyback spikes
     valve_drive: str | None = None
+    #: on a long capture, run the crank's front end in a second process beside the decode
+    #: (Linux, two cores or more; :mod:`toothcomb.decoders.worker`); the result is the same
+    worker_process: bool = True

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from contextlib import ExitStack
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -593,7 +594,10 @@ def decode_capture(
     opts = options or DecodeOptions()
     wheel = _wheel_from_hint(opts.wheel) if opts.wheel else None
     parsing = (lambda d, t: progress("parsing", d, t)) if progress else None
-    with open_capture(path, sample_rate=opts.sample_rate, progress=parsing) as src:
+    with (
+        open_capture(path, sample_rate=opts.sample_rate, progress=parsing) as src,
+        ExitStack() as ending,
+    ):
         info = src.info
         fs = info.sample_rate
         lv_progress = (lambda d, t: progress("levels", d, t)) if progress else None
@@ -658,6 +662,7 @@ def decode_capture(
         }
         total = info.n_samples
         edge_pass = EdgePass(src, fronts, pwm_views, opts.block_size, watch)
+        ending.callback(edge_pass.close)
         got = Received(edge_pass, (lambda s: progress("edges", s, total)) if progress else None)
 
         # -- the first seconds: which channel is the crank, which way, which wheel --
@@ -705,6 +710,8 @@ def decode_capture(
         maybe_pwm = {c: pwm_plugin() for c in cams if c in as_pwm}
         followed = {c for c in [crank, *cams, *pwm] if c in live}
         edge_pass.keep(followed | set(maybe_pwm))
+        if opts.worker_process:
+            edge_pass.hand_off({crank})
         state: dict[int, _CamState] = {c: _CamState() for c in cams}
         for c in cams:
             if looks[c].kind == "vr":
@@ -798,7 +805,7 @@ def decode_capture(
             state[c].events.append(ev)
         # steps on the crank channel that did not hold: a short pulse gives at most one of
         # each direction
-        rejected = getattr(fronts[crank], "rejected", {})
+        rejected = edge_pass.rejected(crank)
         pulses = max(rejected.values(), default=0)
         if pulses:
             stats.extra += pulses

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import csv
 import json
+import sys
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -83,7 +84,17 @@ def dask_batch(captures: list[str]) -> BatchResult:
         distributed.Client(cluster) as client,
         dask_executor(client) as executor,
     ):
-        return decode_many(captures, BatchOptions(), executor)
+        result = decode_many(captures, BatchOptions(), executor)
+    # distributed keeps a thread for its off-loaded work once it has run any; the tests after
+    # this one fork decode workers, which they may only do with no other thread running
+    utils = sys.modules.get("distributed.utils")
+    offload = getattr(utils, "_offload_executor", None)
+    if isinstance(offload, ThreadPoolExecutor):
+        offload.shutdown(wait=True)
+        utils._offload_executor = ThreadPoolExecutor(  # type: ignore[union-attr]
+            max_workers=1, thread_name_prefix="Dask-Offload"
+        )
+    return result
 
 
 def _name(path: str) -> str:

@@ -1,0 +1,357 @@
+"""Some channels' front ends in a second process, beside the decode (Linux, two cores or more).
+
+The crank's front end does most of a decode's per-sample work: it has fifty times the flanks of
+a cam to find and time. On a long capture, :class:`~toothcomb.decoders.edgepass.EdgePass` hands
+it to a forked process from one block on: the worker reads the same blocks from the file itself,
+runs the front end it was forked with (its state, calibration and all, is the parent's at that
+block) and sends the edges back in order, while the decode goes on with the other channels and
+the per-edge work. The edges are the very ones one process finds (the same front end on the same
+blocks), so the result does not change; only the wall time does.
+
+What travels back is bytes in a fixed layout (:func:`pack_blocks`): each block's end, each
+channel's edges as the arrays :class:`~toothcomb.decoders.model.Edges` holds (float64 times,
+int8 directions, float64 strengths) and its settled time; at the end the edges the front ends
+still held and the pulses they rejected; or, when the worker fails, the error's class name and
+its sentence. No Python object is rebuilt from what comes through the pipe.
+
+A worker is forked only where that is safe and pays: on Linux, with two cores or more for this
+process, no other thread running (a fork copies other threads' locks in whatever state they are
+in) and at least :data:`MIN_SAMPLES` samples still to come. The worker writes nothing to the
+terminal and leaves interrupts to the decode, which stops it when it ends, whichever way.
+"""
+
+from __future__ import annotations
+
+import inspect
+import os
+import signal
+import sys
+import threading
+import warnings
+from collections import deque
+from multiprocessing.connection import Connection
+from typing import Any
+
+import numpy as np
+
+from . import errors
+from .errors import DecodeError
+from .model import Edges
+
+#: the fewest samples still to come for a worker to pay for its fork (the crank's front end is
+#: then more work than the fork, and the other process reading the file as well)
+MIN_SAMPLES = 1 << 25
+#: blocks whose edges travel back in one message
+GROUP = 16
+#: bytes the pipe from the worker holds (Linux allows 1 MiB to anyone by default): the worker
+#: runs ahead by that much at most, so memory stays flat however long the capture
+PIPE_BYTES = 1 << 20
+
+
+def can_fork() -> bool:
+    """Whether this process may fork a worker: Linux, two cores or more for it, no other thread.
+
+    >>> isinstance(can_fork(), bool)
+    True
+    """
+    if not sys.platform.startswith("linux") or not hasattr(os, "fork"):
+        return False
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = os.cpu_count() or 1
+    return cores >= 2 and threading.active_count() == 1
+
+
+def starts_anywhere(source: Any) -> bool:
+    """Whether ``source`` gives its integer codes from any block on (``code_blocks(size,
+    start=...)``), which a worker needs to read its share of the file itself."""
+    blocks = getattr(source, "code_blocks", None)
+    if blocks is None:
+        return False
+    try:
+        return "start" in inspect.signature(blocks).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+#: what a message is: blocks of edges, the end, a failure
+_BLOCKS, _END, _FAILED = b"B", b"E", b"F"
+
+
+def pack_blocks(
+    blocks: list[tuple[int, dict[int, Edges], dict[int, float]]], channels: tuple[int, ...]
+) -> bytes:
+    """Blocks of (stop, channel -> edges, channel -> settled time) as bytes: the count, then
+    per block its stop and the edge count of each of ``channels``; every settled time (NaN
+    where a front end has none); then all times, all directions, all strengths.
+
+    >>> e = Edges(np.array([0.5, 0.75]), np.array([1, -1], np.int8), np.array([2.0, 2.5]))
+    >>> got = unpack_blocks(pack_blocks([(64, {3: e}, {3: 0.25}), (128, {3: Edges.empty()}, {})],
+    ...                                 (3,)), (3,))
+    >>> [(stop, {c: x.times.tolist() for c, x in ed.items()}, st) for stop, ed, st in got]
+    [(64, {3: [0.5, 0.75]}, {3: 0.25}), (128, {3: []}, {})]
+    """
+    head = [len(blocks)]
+    settled = []
+    parts: list[Edges] = []
+    for stop, edges, st in blocks:
+        head.append(stop)
+        for c in channels:
+            e = edges[c]
+            head.append(len(e))
+            parts.append(e)
+            settled.append(st.get(c, np.nan))
+    return b"".join(
+        (
+            _BLOCKS,
+            np.array(head, dtype="<i8").tobytes(),
+            np.array(settled, dtype="<f8").tobytes(),
+            *(np.asarray(e.times, dtype="<f8").tobytes() for e in parts),
+            *(np.asarray(e.direction, dtype="i1").tobytes() for e in parts),
+            *(np.asarray(e.strength, dtype="<f8").tobytes() for e in parts),
+        )
+    )
+
+
+def unpack_blocks(
+    data: bytes, channels: tuple[int, ...]
+) -> list[tuple[int, dict[int, Edges], dict[int, float]]]:
+    """What :func:`pack_blocks` packed (the ``channels`` must be the same)."""
+    view = memoryview(data)[1:]
+    k = len(channels)
+    n = int(np.frombuffer(view, "<i8", 1)[0])
+    head = np.frombuffer(view, "<i8", 1 + n * (1 + k)).tolist()
+    at = 8 * len(head)
+    settled = np.frombuffer(view, "<f8", n * k, at).tolist()
+    at += 8 * n * k
+    counts = [head[1 + b * (1 + k) + 1 + j] for b in range(n) for j in range(k)]
+    total = sum(counts)
+    times = np.frombuffer(view, "<f8", total, at)
+    direction = np.frombuffer(view, "i1", total, at + 8 * total)
+    strength = np.frombuffer(view, "<f8", total, at + 9 * total)
+    if at + 17 * total != len(view):
+        raise ValueError("a message from the worker does not add up")
+    out = []
+    i = e0 = 0
+    for b in range(n):
+        stop = head[1 + b * (1 + k)]
+        edges, st = {}, {}
+        for c in channels:
+            e1 = e0 + counts[i]
+            edges[c] = Edges(times[e0:e1].copy(), direction[e0:e1].copy(), strength[e0:e1].copy())
+            if settled[i] == settled[i]:  # not NaN: the front end has a settled time
+                st[c] = settled[i]
+            e0 = e1
+            i += 1
+        out.append((stop, edges, st))
+    return out
+
+
+def _pack_end(
+    final: dict[int, Edges], settled: dict[int, float], rejected: dict[int, dict[int, int]],
+    channels: tuple[int, ...],
+) -> bytes:
+    """The end: the last edges and settled times (as one block) and, per channel, the counts
+    of pulses rejected by direction (up to two: -1 and +1)."""
+    counts = [int(rejected.get(c, {}).get(d, 0)) for c in channels for d in (-1, 1)]
+    has = [int(c in rejected) for c in channels]
+    tail = np.array(has + counts, dtype="<i8").tobytes()
+    return _END + len(tail).to_bytes(8, "little") + tail + pack_blocks([(0, final, settled)],
+                                                                        channels)
+
+
+def _unpack_end(
+    data: bytes, channels: tuple[int, ...]
+) -> tuple[dict[int, Edges], dict[int, float], dict[int, dict[int, int]]]:
+    size = int.from_bytes(data[1:9], "little")
+    tail = np.frombuffer(data, "<i8", size // 8, 9).tolist()
+    k = len(channels)
+    rejected = {
+        c: {-1: tail[k + 2 * j], 1: tail[k + 2 * j + 1]}
+        for j, c in enumerate(channels)
+        if tail[j]
+    }
+    ((_, final, settled),) = unpack_blocks(data[9 + size :], channels)
+    return final, settled, rejected
+
+
+def _pack_failure(exc: BaseException) -> bytes:
+    return _FAILED + f"{type(exc).__name__}\n{exc}".encode("utf-8", "replace")
+
+
+def _failure(data: bytes) -> Exception:
+    """The worker's error as this process raises it: toothcomb's own errors as themselves,
+    anything else as a :class:`DecodeError` that names it."""
+    name, _, text = data[1:].decode("utf-8", "replace").partition("\n")
+    cls = getattr(errors, name, None)
+    if isinstance(cls, type) and issubclass(cls, errors.ToothcombError):
+        return cls(text)
+    return DecodeError(
+        f"the second process decoding the crank channel failed ({name}: {text}); decode "
+        "again with --one-process"
+    )
+
+
+class FrontEndWorker:
+    """``frontends`` (channel -> front end) run over the blocks of ``source`` from sample
+    ``start`` on, in a forked process; :meth:`next` gives each block's results in order and
+    :meth:`finish` the last edges.
+
+    The caller keeps its own copies of the front ends but must not use them any more: the
+    worker's are the live ones. What the caller may still want of them after the pass, the
+    pulses each rejected (``rejected``: direction -> count, where a front end counts them),
+    comes back with the last edges. Call :meth:`close` when done, also after an error (it
+    stops the worker if it still runs).
+    """
+
+    def __init__(
+        self,
+        source: Any,
+        frontends: dict[int, Any],
+        start: int,
+        scale: float,
+        block_size: int,
+    ) -> None:
+        self.channels = tuple(sorted(frontends))
+        self._queue: deque[tuple[int, dict[int, Edges], dict[int, float]]] = deque()
+        self._end: bytes | None = None
+        self._pid = 0
+        read_fd, write_fd = os.pipe()
+        _widen(write_fd)
+        with warnings.catch_warnings():
+            # (Python 3.12 on warns of forking with threads; there are none, see can_fork)
+            warnings.simplefilter("ignore", DeprecationWarning)
+            pid = os.fork()
+        if pid == 0:  # pragma: no cover - the worker (coverage does not follow a fork)
+            os.close(read_fd)
+            _work(Connection(write_fd, readable=False), source, frontends, self.channels,
+                  start, scale, block_size)
+        os.close(write_fd)
+        self._pid = pid
+        self._conn = Connection(read_fd, writable=False)
+
+    def _receive(self) -> None:
+        try:
+            got = self._conn.recv_bytes()
+        except (EOFError, OSError):
+            status = self._reap()
+            raise DecodeError(
+                "the second process decoding the crank channel stopped before the end of the "
+                f"capture ({status}); decode again with --one-process"
+            ) from None
+        kind = got[:1]
+        if kind == _FAILED:
+            self._reap()
+            raise _failure(got)
+        if kind == _END:
+            self._end = got
+        elif kind == _BLOCKS:
+            self._queue.extend(unpack_blocks(got, self.channels))
+        else:
+            self.close()
+            raise DecodeError("the second process decoding the crank channel sent nonsense")
+
+    def next(self) -> tuple[int, dict[int, Edges], dict[int, float]]:
+        """The next block's (stop, channel -> edges, channel -> settled time)."""
+        while not self._queue:
+            if self._end is not None:
+                raise RuntimeError("the worker ended before the blocks did")
+            self._receive()
+        return self._queue.popleft()
+
+    def finish(
+        self,
+    ) -> tuple[dict[int, Edges], dict[int, float], dict[int, dict[int, int]]]:
+        """The edges the front ends held at the end, their settled times, and the pulses each
+        rejected (channels whose front end counts them)."""
+        while self._end is None:
+            if self._queue:
+                raise RuntimeError("the worker has blocks left at the end")
+            self._receive()
+        self._reap()
+        return _unpack_end(self._end, self.channels)
+
+    def _reap(self) -> str:
+        """Wait for the worker to end; how it ended, in words."""
+        if not self._pid:
+            return "ended"
+        try:
+            _, status = os.waitpid(self._pid, 0)
+        except ChildProcessError:
+            status = 0
+        self._pid = 0
+        self._conn.close()
+        if os.WIFSIGNALED(status):
+            return f"killed by signal {os.WTERMSIG(status)}"
+        return f"exit status {os.WEXITSTATUS(status)}"
+
+    def close(self) -> None:
+        """Stop the worker if it still runs, and wait for it. Calling it again does nothing."""
+        if self._pid:
+            try:
+                os.kill(self._pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            self._reap()
+
+    @property
+    def running(self) -> bool:
+        """True until the worker has been waited for."""
+        return bool(self._pid)
+
+
+def _widen(fd: int) -> None:
+    """Let the pipe hold :data:`PIPE_BYTES` (where the system allows): the worker then runs
+    that far ahead instead of waiting for the decode to take each message."""
+    try:
+        import fcntl
+
+        fcntl.fcntl(fd, fcntl.F_SETPIPE_SZ, PIPE_BYTES)
+    except (ImportError, AttributeError, OSError):
+        pass
+
+
+def _settled(frontends: dict[int, Any]) -> dict[int, float]:
+    return {c: float(fe.settled_s) for c, fe in frontends.items() if hasattr(fe, "settled_s")}
+
+
+def _work(  # pragma: no cover - runs in the forked worker
+    conn: Connection,
+    source: Any,
+    frontends: dict[int, Any],
+    channels: tuple[int, ...],
+    start: int,
+    scale: float,
+    block_size: int,
+) -> None:
+    """The worker's whole life: the blocks, the front ends, the edges back; then exit without
+    running anything of the parent's (no atexit, no finalizers)."""
+    code = 0
+    try:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+        warnings.simplefilter("ignore")
+        out: list[tuple[int, dict[int, Edges], dict[int, float]]] = []
+        for block in source.code_blocks(block_size, start=start):
+            data = block.data
+            edges = {
+                c: fe.process_codes(data[:, c], block.start, scale) for c, fe in frontends.items()
+            }
+            out.append((block.stop, edges, _settled(frontends)))
+            if len(out) >= GROUP:
+                conn.send_bytes(pack_blocks(out, channels))
+                out = []
+        if out:
+            conn.send_bytes(pack_blocks(out, channels))
+        final = {c: fe.finish() for c, fe in frontends.items()}
+        rejected = {
+            c: dict(fe.rejected) for c, fe in frontends.items() if hasattr(fe, "rejected")
+        }
+        conn.send_bytes(_pack_end(final, _settled(frontends), rejected, channels))
+    except BaseException as exc:  # every failure goes back to the decode
+        try:
+            conn.send_bytes(_pack_failure(exc))
+        except BaseException:  # the decode is gone
+            code = 1
+    finally:
+        os._exit(code)
