@@ -15,10 +15,14 @@ What it does:
    every length in ``--minutes``; an HDF5 file (float32) of the longest length; a scope CSV of
    about ``--csv-mb`` megabytes (500 kS/s, 8-bit);
 2. in a fresh process per capture: reads the WAV with ``soundfile`` into float32 blocks of the
-   decoder's block size, decodes it, and repeats both ``--repeats`` times (the fastest read and
-   the fastest decode count: the page cache is warm for both, and a busy moment of the machine
-   drops out); reads it in one piece as well when it fits ``--one-shot-mb``;
-   reports both times, their ratio and the decode's peak resident memory (``ru_maxrss``);
+   decoder's block size, decodes it as toothcomb does by default (on a long capture the crank's
+   front end runs in a forked worker process) and once more in one process (``--one-process``),
+   and repeats the three ``--repeats`` times (the fastest of each count: the page cache is warm
+   for all, and a busy moment of the machine drops out); reports the times, the ratios to the
+   read, the decode's peak resident memory (``ru_maxrss``), the worker's (pages it shares with
+   the decode included) and the peak of both processes' proportional set sizes together
+   (sampled every 50 ms: shared pages count once); in a process of its own, reads the WAV in one
+   piece as well when it fits ``--one-shot-mb``;
 3. for the CSV: times toothcomb's parse of the whole file (done once, when it is opened: every
    row checked, the clock fitted, the values spooled for the decode's passes; by pyarrow's CSV
    reader when the ``fast-csv`` extra is installed, else by numpy's parser) against
@@ -60,7 +64,7 @@ import numpy as np, soundfile as sf
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 
-path, bs, one_shot_mb, repeats = sys.argv[1], int(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
+path, bs, repeats, marker = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), sys.argv[4]
 
 def read_blocks():
     t0 = time.perf_counter()
@@ -70,31 +74,42 @@ def read_blocks():
             n += b.shape[0]
     return time.perf_counter() - t0
 
-def decode():
+def decode(worker=True):
     t0 = time.perf_counter()
-    r = decode_capture(path, DecodeOptions(block_size=bs))
+    r = decode_capture(path, DecodeOptions(block_size=bs, worker_process=worker))
     return time.perf_counter() - t0, r
 
-reads, decodes = [], []
+reads, decodes, alone = [], [], []
 for _ in range(repeats):
     reads.append(read_blocks())
     dt, r = decode()
     decodes.append(dt)
+    alone.append(decode(worker=False)[0])
+# one decode more, untimed, while the caller samples the memory of this process and its worker
+open(marker, "w").close()
+decode()
 peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-one = None
+# the worker processes (a fork shares the decode's pages: they count in both figures)
+worker_peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
 info = sf.info(path)
-if info.frames * info.channels * 4 / 1e6 <= one_shot_mb:
-    t0 = time.perf_counter()
-    x, _ = sf.read(path, dtype="float32", always_2d=True)
-    one = time.perf_counter() - t0
-    del x
 print(json.dumps({
-    "read_s": min(reads), "decode_s": min(decodes), "one_shot_s": one, "peak_mib": peak,
+    "read_s": min(reads), "decode_s": min(decodes), "peak_mib": peak,
+    "alone_s": min(alone), "worker_peak_mib": worker_peak,
     "frames": info.frames, "revolutions": r.crank.revolutions,
     "references": len(r.crank.reference_times_s), "sync_losses": r.crank.sync_losses,
     "rpm": r.crank.rpm.mean,
     "cam_edges": [[e.direction, round(e.angle.mean, 3), e.angle.n] for e in r.cams[0].edges],
 }))
+"""
+
+#: the whole WAV read in one piece (its own process: the array does not count in the decode's
+#: memory)
+ONE_SHOT = r"""
+import json, sys, time
+import soundfile as sf
+t0 = time.perf_counter()
+x, _ = sf.read(sys.argv[1], dtype="float32", always_2d=True)
+print(json.dumps({"one_shot_s": time.perf_counter() - t0}))
 """
 
 #: one decode under cProfile: where its time goes, by stage: the cumulative time of the
@@ -236,11 +251,47 @@ def make(path: Path, sc, subtype: str | None = None) -> float:
     return time.perf_counter() - t0
 
 
-def run(code: str, *args: str) -> dict:
-    out = subprocess.run([sys.executable, "-c", code, *args], capture_output=True, text=True)
-    if out.returncode != 0:
-        raise SystemExit(f"{args[0] if args else 'baseline'}: {out.stderr.strip()}")
-    return json.loads(out.stdout)
+def _pss_kib(pid: int) -> int:
+    """Proportional set size of ``pid`` (KiB; Linux): each shared page counts as its share."""
+    try:
+        with open(f"/proc/{pid}/smaps_rollup") as f:
+            for line in f:
+                if line.startswith("Pss:"):
+                    return int(line.split()[1])
+    except OSError:
+        pass
+    return 0
+
+
+def _children(pid: int) -> list[int]:
+    try:
+        with open(f"/proc/{pid}/task/{pid}/children") as f:
+            return [int(x) for x in f.read().split()]
+    except OSError:
+        return []
+
+
+def run(code: str, *args: str, marker: Path | None = None) -> dict:
+    """Run ``code`` in a fresh interpreter; its JSON output. With ``marker`` (a path the code
+    creates when it starts what is to be measured) it has ``pss_mib`` too: the peak of the
+    process's and its children's proportional set sizes together from then on, sampled every
+    50 ms (Linux; 0 elsewhere), which counts the pages a forked worker shares with the decode
+    once. (Sampling reads the processes' page tables, so it is kept out of the timed part.)"""
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        proc = subprocess.Popen([sys.executable, "-c", code, *args], stdout=out, stderr=err,
+                                text=True)
+        pss = 0
+        while proc.poll() is None:
+            if marker is not None and marker.exists():
+                pss = max(pss, sum(_pss_kib(p) for p in [proc.pid, *_children(proc.pid)]))
+            time.sleep(0.05)
+        out.seek(0)
+        err.seek(0)
+        if proc.returncode != 0:
+            raise SystemExit(f"{args[0] if args else 'baseline'}: {err.read().strip()}")
+        result = json.loads(out.read())
+    result["pss_mib"] = pss / 1024.0
+    return result
 
 
 def _print_profile(path: Path, block_size: int, measured: dict) -> None:
@@ -301,20 +352,33 @@ def main(argv: list[str] | None = None) -> int:
         if "wav" in a.only:
             print(f"\n2-channel 16-bit WAV at {a.rate:g} Hz: soundfile read into float32 blocks "
                   "against the whole decode, side by side")
+            print("(decode: as toothcomb decodes by default, with the crank's front end in a "
+                  "worker process on long captures; 1-proc: --one-process; peak: the decode "
+                  "process's RSS; worker: the worker's RSS, pages shared with the decode "
+                  "included; PSS: both together, shared pages counted once)")
             print(f"{'crank':>5} {'min':>5} {'MB':>7} {'make s':>7} {'read s':>7} {'1-shot s':>8} "
-                  f"{'decode s':>9} {'ratio':>6} {'Msamp/s':>8} {'peak MiB':>9}  result")
+                  f"{'decode s':>9} {'ratio':>6} {'1-proc s':>8} {'ratio':>6} {'Msamp/s':>8} "
+                  f"{'peak MiB':>9} {'worker':>7} {'PSS':>5}  result")
             for minutes in a.minutes:
                 for crank in a.sensors:
                     path = folder / f"idle-{crank}-{minutes:g}min.wav"
                     made = make(path, scenario(crank, minutes * 60.0, a.rate))
-                    r = run(MEASURE, str(path), str(a.block_size), str(a.one_shot_mb),
-                            str(a.repeats))
+                    marker = folder / "measuring-memory"
+                    marker.unlink(missing_ok=True)
+                    r = run(MEASURE, str(path), str(a.block_size), str(a.repeats), str(marker),
+                            marker=marker)
+                    marker.unlink(missing_ok=True)
+                    r["one_shot_s"] = None
+                    if r["frames"] * 2 * 4 / 1e6 <= a.one_shot_mb:
+                        r["one_shot_s"] = run(ONE_SHOT, str(path))["one_shot_s"]
                     one = f"{r['one_shot_s']:8.2f}" if r["one_shot_s"] is not None else "       -"
                     rate = r["frames"] * 2 / r["decode_s"] / 1e6
                     edges = " ".join(f"{d[0]} {d[1]:.2f} (n {d[2]})" for d in r["cam_edges"])
                     print(f"{crank:>5} {minutes:5g} {path.stat().st_size / 1e6:7.0f} {made:7.0f} "
                           f"{r['read_s']:7.2f} {one} {r['decode_s']:9.2f} "
-                          f"{r['decode_s'] / r['read_s']:6.2f} {rate:8.1f} {r['peak_mib']:9.0f}  "
+                          f"{r['decode_s'] / r['read_s']:6.2f} {r['alone_s']:8.2f} "
+                          f"{r['alone_s'] / r['read_s']:6.2f} {rate:8.1f} {r['peak_mib']:9.0f} "
+                          f"{r['worker_peak_mib']:7.0f} {r['pss_mib']:5.0f}  "
                           f"{r['rpm']:.0f} rpm, {r['references']} refs, "
                           f"{r['sync_losses']} losses; cam {edges}", flush=True)
                     if a.profile:
