@@ -10,10 +10,13 @@ crank is known, the channels nobody follows are dropped (:meth:`EdgePass.keep`).
 The pass hands over edges, never samples, so memory stays flat whatever the capture's length.
 
 A worker thread for the pass was tried and left out: with the front ends on a thread of their
-own beside the tooth tracker, ten-minute two-channel WAVs decoded no faster on two cores (1.49 to
-1.82 s threaded against 1.35 to 1.87 s in one thread, over eight runs); the front ends' numpy
-passes are bound by memory, and the threads trade the interpreter lock at every hand-over. One
-thread per channel, each reading the file itself, was no faster either.
+own beside the tooth tracker, ten-minute two-channel WAVs decoded no faster on two cores (1.49
+to 1.82 s threaded against 1.35 to 1.87 s in one thread, over eight runs): the threads trade the
+interpreter lock at every hand-over. One thread per channel, each reading the file itself, was
+no faster either. Memory is not what holds them back (two ten-minute decodes in two processes at
+once take 0.48-0.49 s each, against 0.44 s alone), and a process of its own is faster: on a long
+capture the crank's front end, the longest part of the pass, goes on in a forked worker
+(:meth:`EdgePass.hand_off`, :mod:`toothcomb.decoders.worker`), with the same edges.
 """
 
 from __future__ import annotations
