@@ -24,7 +24,14 @@ from toothcomb.decoders.model import Edges
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 from toothcomb.decoders.readers import open_capture
-from toothcomb.decoders.simulate import HallSensor, IgnitionSpikes, Instrument, preset
+from toothcomb.decoders.simulate import (
+    Channel,
+    HallSensor,
+    IgnitionSpikes,
+    Instrument,
+    ValveDrive,
+    preset,
+)
 
 pytestmark = pytest.mark.skipif(
     not sys.platform.startswith("linux") or (os.cpu_count() or 1) < 2,
@@ -60,9 +67,9 @@ def _json(path: Path, **opts: object) -> str:
     return json.dumps(r.to_json(), sort_keys=True)
 
 
-def _soundcard(sc, rate: float = 48_000.0, bits: int = 16):
+def _soundcard(sc, rate: float = 48_000.0, bits: int = 16, full_scale_v: float = 1.0):
     return sc.replace(instrument=Instrument(kind="soundcard", sample_rate=rate, bits=bits,
-                                            oversample=1))
+                                            oversample=1, full_scale_v=full_scale_v))
 
 
 #: the process ids of the workers the ``forks`` fixture saw forked
@@ -85,6 +92,21 @@ def _scenario(name: str):
         return _soundcard(preset("hall-36-1-two-cams-scope", duration_s=7.0))
     if name == "vr-spikes":
         return _soundcard(preset("snap-60-2-vr-spikes", duration_s=7.0), bits=24)
+    if name == "swapped":
+        # the cam on the first input, the crank on the second
+        sc = preset("idle-60-2-vr-soundcard", duration_s=7.0)
+        return _soundcard(sc.replace(channels=tuple(reversed(sc.channels))))
+    if name == "valve":
+        # a phaser valve's PWM command on a third input (with its flyback spikes), found
+        # without a hint: a second front end follows the cam channels as possible commands
+        sc = preset("hall-36-1-two-cams-scope", duration_s=7.0)
+        valve = ValveDrive(duty_pct=((0.0, 50.0), (2.0, 75.0), (4.0, 30.0), (5.5, 50.0)))
+        ocv = Channel(name="ocv", source="valve:cam_intake", noise_v=0.05, range_v=(-35.0, 50.0))
+        sc = sc.replace(cams=(dataclasses.replace(sc.cams[0], valve=valve), sc.cams[1]),
+                        channels=(*sc.channels, ocv))
+        return sc.replace(instrument=Instrument(kind="soundcard", sample_rate=96_000.0, bits=24,
+                                                oversample=1, full_scale_v=60.0,
+                                                ac_corner_hz=0.0))
     if name == "hall-crank-spikes":
         sc = preset("idle-60-2-vr-soundcard", duration_s=7.0)
         crank = dataclasses.replace(sc.crank, sensor=HallSensor())
@@ -101,6 +123,8 @@ def _scenario(name: str):
         ("hall-two-cams", "flac"),
         ("vr-spikes", "flac"),
         ("hall-crank-spikes", "wav"),
+        ("swapped", "wav"),
+        ("valve", "flac"),
     ],
 )
 def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
@@ -113,6 +137,8 @@ def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
     assert len(channels) == 1 and start > 0 and start % 4096 == 0
     # a block size that divides nothing evenly: the worker's blocks are the decode's all the same
     assert _json(path, block_size=3001) == alone
+    if name == "valve":
+        assert len(json.loads(alone)["actuators"]) == 1
     assert _no_child_left()
 
 
