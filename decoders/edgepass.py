@@ -22,7 +22,7 @@ capture the crank's front end, the longest part of the pass, goes on in a forked
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Generator, Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -79,6 +79,7 @@ class EdgePass:
         #: the sample the worker took over at (None: no worker)
         self.worker_start: int | None = None
         self._rejected: dict[int, dict[int, int]] = {}
+        self._gen: Generator[EdgeBatch, None, None] | None = None
 
     def keep(self, channels: set[int]) -> None:
         """Follow only ``channels`` (in either map) from the next block on."""
@@ -241,14 +242,11 @@ class EdgePass:
         return self._gen
 
     def close(self) -> None:
-        """End the pass where it is: its worker, if one runs, is stopped and waited for. A
-        decode that fails half-way calls it, so that no worker outlives it."""
-        gen = getattr(self, "_gen", None)
-        if gen is not None:
-            gen.close()
-        if self._worker is not None:
-            self._worker.close()
-            self._worker = None
+        """End the pass where it is: its worker, if one runs, is stopped and waited for (by the
+        pass's own ``finally``). A decode that fails half-way calls it, so that no worker
+        outlives it."""
+        if self._gen is not None:
+            self._gen.close()
 
 
 class Received:

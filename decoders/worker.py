@@ -295,11 +295,6 @@ class FrontEndWorker:
                 pass
             self._reap()
 
-    @property
-    def running(self) -> bool:
-        """True until the worker has been waited for."""
-        return bool(self._pid)
-
 
 def _widen(fd: int) -> None:
     """Let the pipe hold :data:`PIPE_BYTES` (where the system allows): the worker then runs
