@@ -16,8 +16,9 @@ its sentence. No Python object is rebuilt from what comes through the pipe.
 
 A worker is forked only where that is safe and pays: on Linux, with two cores or more for this
 process, no other thread running (a fork copies other threads' locks in whatever state they are
-in) and at least :data:`MIN_SAMPLES` samples still to come. The worker writes nothing to the
-terminal and leaves interrupts to the decode, which stops it when it ends, whichever way.
+in, but not the threads that would release them: POSIX fork(), rationale) and at least
+:data:`MIN_SAMPLES` samples still to come. The worker writes nothing to the terminal and leaves
+interrupts to the decode, which stops it when it ends, whichever way.
 """
 
 from __future__ import annotations
@@ -43,8 +44,9 @@ from .model import Edges
 MIN_SAMPLES = 1 << 25
 #: blocks whose edges travel back in one message
 GROUP = 16
-#: bytes the pipe from the worker holds (Linux allows 1 MiB to anyone by default): the worker
-#: runs ahead by that much at most, so memory stays flat however long the capture
+#: bytes the pipe from the worker holds: the worker runs ahead by that much at most, so memory
+#: stays flat however long the capture (source: Linux pipe(7), "Pipe capacity": 65536 bytes by
+#: default, up to /proc/sys/fs/pipe-max-size, 1048576 by default, for an unprivileged process)
 PIPE_BYTES = 1 << 20
 
 
