@@ -33,18 +33,15 @@ from toothcomb.decoders.simulate import (
     preset,
 )
 
-pytestmark = pytest.mark.skipif(
-    not sys.platform.startswith("linux") or (os.cpu_count() or 1) < 2,
-    reason="a worker is forked on Linux with two cores or more only",
-)
-
 RNG = np.random.default_rng(4711)
 
 
 @pytest.fixture
 def forks(monkeypatch):
     """Every decode forks its worker however short the capture; the list records each one
-    (channels, first sample); ``pids`` holds their process ids."""
+    (channels, first sample), :data:`PIDS` their process ids."""
+    if not sys.platform.startswith("linux") or len(os.sched_getaffinity(0)) < 2:
+        pytest.skip("a worker is forked on Linux with two cores or more only")
     others = [t.name for t in threading.enumerate() if t is not threading.current_thread()]
     assert others == [], f"threads left running by earlier tests stop every fork: {others}"
     made: list[tuple[tuple[int, ...], int]] = []
