@@ -121,9 +121,12 @@ class EdgePass:
             and _worker.can_fork()
         ):
             return
-        self._worker = _worker.FrontEndWorker(
-            self._source, theirs, start, scale, self._block_size
-        )
+        try:
+            self._worker = _worker.FrontEndWorker(
+                self._source, theirs, start, scale, self._block_size
+            )
+        except OSError:  # no pipe or no process to be had (limits, memory): one process it is
+            return
         self.worker_start = start
 
     # -- the work itself: a plain loop over the blocks --

@@ -204,7 +204,8 @@ class FrontEndWorker:
     worker's are the live ones. What the caller may still want of them after the pass, the
     pulses each rejected (``rejected``: direction -> count, where a front end counts them),
     comes back with the last edges. Call :meth:`close` when done, also after an error (it
-    stops the worker if it still runs).
+    stops the worker if it still runs). Raises :class:`OSError` when no pipe or process can be
+    had (the caller then keeps its front ends).
     """
 
     def __init__(
@@ -221,10 +222,15 @@ class FrontEndWorker:
         self._pid = 0
         read_fd, write_fd = os.pipe()
         _widen(write_fd)
-        with warnings.catch_warnings():
-            # (Python 3.12 on warns of forking with threads; there are none, see can_fork)
-            warnings.simplefilter("ignore", DeprecationWarning)
-            pid = os.fork()
+        try:
+            with warnings.catch_warnings():
+                # (Python 3.12 on warns of forking with threads; there are none, see can_fork)
+                warnings.simplefilter("ignore", DeprecationWarning)
+                pid = os.fork()
+        except OSError:
+            os.close(read_fd)
+            os.close(write_fd)
+            raise
         if pid == 0:  # pragma: no cover - the worker (coverage does not follow a fork)
             os.close(read_fd)
             _work(Connection(write_fd, readable=False), source, frontends, self.channels,

@@ -288,6 +288,24 @@ def test_no_worker_while_another_thread_runs(tmp_path, forks):
     assert worker_mod.can_fork() is True
 
 
+def test_a_fork_that_fails_leaves_the_decode_in_one_process(tmp_path, forks, monkeypatch):
+    """No process to be had (a process limit, memory that cannot be committed): the decode
+    goes on in one process, with the same answer, and leaves no pipe open."""
+    import errno
+
+    path, _ = make_capture(tmp_path, _scenario("idle-60-2-vr-soundcard"), "wav")
+    alone = _json(path, worker_process=False)
+
+    def no_fork():
+        raise OSError(errno.EAGAIN, "Resource temporarily unavailable")
+
+    monkeypatch.setattr(worker_mod.os, "fork", no_fork)
+    before = len(os.listdir("/proc/self/fd"))
+    assert _json(path) == alone
+    assert len(forks) == 1 and PIDS == []
+    assert len(os.listdir("/proc/self/fd")) == before
+
+
 def test_no_worker_for_what_is_left_of_a_short_capture(tmp_path, monkeypatch):
     path, _ = make_capture(tmp_path, _scenario("idle-60-2-vr-soundcard"), "wav")
     made = []
