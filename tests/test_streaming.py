@@ -290,6 +290,30 @@ def test_vr_recursions_step_by_step_and_at_once_agree():
     assert vr_mod._follow(vr_mod._ENVELOPE, 0.3, 0.9) == 0.5 * (0.3 + 0.9)
 
 
+@pytest.mark.parametrize("decay", [0.8, 0.5, 1.0, 0.0, 1.25])
+def test_vr_envelope_through_runs_of_quiet_half_waves_is_step_by_step(decay: float):
+    """The envelope over a mix of significant and insignificant half-waves, runs of the latter
+    taken at once (a running product held at the floor), is :meth:`VrFrontEnd._close`'s steps
+    one after the other, to the last bit; a decay above 1 is taken step by step."""
+    for trial in range(300):
+        n = int(RNG.integers(1, 400))
+        if trial % 2:
+            # long runs of each kind, as in and between the gaps of a wheel
+            quiet = np.repeat(RNG.random(n // 25 + 1) < 0.5, 25)[:n]
+        else:
+            quiet = RNG.random(n) < RNG.random()
+        peak = RNG.random(n) * 10.0 ** float(RNG.integers(-3, 2))
+        e0 = float(RNG.random() * 10.0 ** float(RNG.integers(-4, 2)))
+        floor = float(RNG.choice([0.0, 1e-3, 0.05, 0.2]))
+        e, want = e0, []
+        for p, q in zip(peak.tolist(), quiet.tolist(), strict=True):
+            e = max(e * decay, floor) if q else vr_mod._follow(vr_mod._ENVELOPE, e, p)
+            want.append(e)
+        got = vr_mod._envelope_through(e0, peak, quiet, decay, floor)
+        assert got.tolist() == want
+    assert vr_mod._envelope_through(1.0, np.empty(0), np.empty(0, bool), decay, 0.1).size == 0
+
+
 def test_hall_step_runs_are_the_runs_of_each_direction():
     d = RNG.normal(size=20_000)
     s, e, sign = hall_mod._step_runs(d, 1.2)

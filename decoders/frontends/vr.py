@@ -18,6 +18,7 @@ on how the leads are wired and is worked out later from the gap signature of the
 
 from __future__ import annotations
 
+import itertools
 import math
 from typing import Any
 
@@ -321,17 +322,7 @@ class VrFrontEnd(SampleFeed):
         state_pre = np.concatenate(([self._state], sign[loud]))[before_j]
         # the envelope: the mean recursion over each stretch of significant half-waves, a decay
         # step at each insignificant one, in order
-        env = np.empty(n)
-        e = self.envelope
-        i = 0
-        for q in [*np.flatnonzero(quiet).tolist(), n]:
-            if q > i:
-                env[i:q] = _run(_ENVELOPE, e, peak[i:q])
-                e = float(env[q - 1])
-            if q < n:
-                e = max(e * self.decay, self.floor)
-                env[q] = e
-            i = q + 1
+        env = _envelope_through(self.envelope, peak, quiet, self.decay, self.floor)
         env_pre = np.concatenate(([self.envelope], env[:-1]))
         arm = np.maximum(np.maximum(self.floor, self.fraction * env_pre), 0.12 * slow_pre)
         below = peak < arm
@@ -596,6 +587,45 @@ def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     if len(x) <= RUN_BY_STEPS and _PLAIN:
         return _steps_of(rec, y0, x)
     return _lfilter_run(rec, y0, x)
+
+
+def _envelope_through(
+    e: float, peak: np.ndarray, quiet: np.ndarray, decay: float, floor: float
+) -> np.ndarray:
+    """The envelope after each half-wave, from ``e``: the mean recursion :data:`_ENVELOPE` at a
+    significant one (``quiet`` False), a decay step ``max(e * decay, floor)`` at an
+    insignificant one -- :meth:`VrFrontEnd._close`'s steps, in order.
+
+    The gap between teeth (and noise about the zero anywhere) brings insignificant half-waves
+    by the hundred in a row: each such run is taken at once, the running product of ``decay``
+    kept by ``np.multiply.accumulate`` (the same multiplications in the same order) and held at
+    ``floor``. With ``decay`` at most 1 that is the step-by-step value: once the product falls
+    below ``floor`` it stays below, and the envelope, once at ``floor``, stays there.
+
+    >>> _envelope_through(1.0, np.array([0.0, 0.0, 3.0, 0.0]), np.array([1, 1, 0, 1], bool),
+    ...                   0.5, 0.3).tolist()
+    [0.5, 0.3, 1.65, 0.825]
+    """
+    n = len(peak)
+    env = np.empty(n)
+    if n == 0:
+        return env
+    if not 0.0 <= decay <= 1.0:
+        # (a decay that grows the envelope: step by step)
+        for j, (p, q) in enumerate(zip(peak.tolist(), quiet.tolist(), strict=True)):
+            e = max(e * decay, floor) if q else _follow(_ENVELOPE, e, p)
+            env[j] = e
+        return env
+    edges = np.flatnonzero(quiet[1:] != quiet[:-1]) + 1
+    for a, b in itertools.pairwise([0, *edges.tolist(), n]):
+        if quiet[a]:
+            steps = np.full(b - a + 1, decay)
+            steps[0] = e
+            np.maximum(np.multiply.accumulate(steps)[1:], floor, out=env[a:b])
+        else:
+            env[a:b] = _run(_ENVELOPE, e, peak[a:b])
+        e = float(env[b - 1])
+    return env
 
 
 def _lfilter_run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
