@@ -231,11 +231,7 @@ class EdgePass:
         )
 
     def _settled(self) -> dict[int, float]:
-        return {
-            c: float(fe.settled_s)
-            for c, fe in self._frontends.items()
-            if hasattr(fe, "settled_s")
-        }
+        return _worker.settled_times(self._frontends)
 
     def __iter__(self) -> Iterator[EdgeBatch]:
         if self._started:

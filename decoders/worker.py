@@ -315,7 +315,8 @@ def _widen(fd: int) -> None:
         pass
 
 
-def _settled(frontends: dict[int, Any]) -> dict[int, float]:
+def settled_times(frontends: dict[int, Any]) -> dict[int, float]:
+    """Each front end's ``settled_s``, where it has one."""
     return {c: float(fe.settled_s) for c, fe in frontends.items() if hasattr(fe, "settled_s")}
 
 
@@ -340,7 +341,7 @@ def _work(  # pragma: no cover - runs in the forked worker
             edges = {
                 c: fe.process_codes(data[:, c], block.start, scale) for c, fe in frontends.items()
             }
-            out.append((block.stop, edges, _settled(frontends)))
+            out.append((block.stop, edges, settled_times(frontends)))
             if len(out) >= GROUP:
                 conn.send_bytes(pack_blocks(out, channels))
                 out = []
@@ -350,7 +351,7 @@ def _work(  # pragma: no cover - runs in the forked worker
         rejected = {
             c: dict(fe.rejected) for c, fe in frontends.items() if hasattr(fe, "rejected")
         }
-        conn.send_bytes(_pack_end(final, _settled(frontends), rejected, channels))
+        conn.send_bytes(_pack_end(final, settled_times(frontends), rejected, channels))
     except BaseException as exc:  # every failure goes back to the decode
         try:
             conn.send_bytes(_pack_failure(exc))

@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
 import numpy as np
 import pytest
+from toothcomb.decoders.options import DecodeOptions
+from toothcomb.decoders.pipeline import decode_capture
 from toothcomb.decoders.result import DecodeResult
 from toothcomb.decoders.simulate import Scenario, simulate
 
@@ -21,6 +24,13 @@ def make_capture(tmp_path: Path, scenario: Scenario, fmt: str = "flac") -> tuple
     path = tmp_path / f"capture.{fmt}"
     sim.write(path)
     return path, sim.truth
+
+
+def decode_json(path: Path, **opts: object) -> str:
+    """The decode of ``path`` with ``DecodeOptions(**opts)``, as sorted JSON text (two decodes
+    that agree to the last bit give the same text)."""
+    r = decode_capture(str(path), DecodeOptions(**opts))  # type: ignore[arg-type]
+    return json.dumps(r.to_json(), sort_keys=True)
 
 
 def truth_edges(truth: dict, cam: int = 0) -> dict[tuple[str, int], list[tuple[float, float]]]:

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import io
 import itertools
-import json
 import math
 from collections.abc import Iterator
 from pathlib import Path
@@ -15,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
-from conftest import cam_errors, make_capture
+from conftest import cam_errors, decode_json, make_capture
 from rich.console import Console
 from scipy import signal
 from toothcomb.cli.progress import SHOW_AFTER_S, StageProgress, progress_for
@@ -41,10 +40,6 @@ from toothcomb.decoders.wheels.missing_tooth import MissingToothSpec, ToothTrack
 
 RNG = np.random.default_rng(1618)
 
-
-def _decode_json(path: Path, **opts: object) -> str:
-    r = decode_capture(str(path), DecodeOptions(**opts))  # type: ignore[arg-type]
-    return json.dumps(r.to_json(), sort_keys=True)
 
 
 # --------------------------------------------------------------------------- audio reader
@@ -183,7 +178,7 @@ def test_window_levels_decode_the_same_whatever_the_blocks(tmp_path, monkeypatch
     path, truth = make_capture(tmp_path, preset("cranking-60-2-vr", duration_s=2.0), "h5")
     exact = decode_capture(str(path))
     monkeypatch.setattr(levels_mod, "SPARSE_ABOVE", 10_000)
-    answers = {_decode_json(path, block_size=b) for b in (1000, 4099, 65536)}
+    answers = {decode_json(path, block_size=b) for b in (1000, 4099, 65536)}
     assert len(answers) == 1
     sparse = decode_capture(str(path))
     assert len(sparse.crank.reference_times_s) == len(exact.crank.reference_times_s)
@@ -554,20 +549,20 @@ def test_decode_is_the_same_with_every_block_searched_as_it_comes(tmp_path, monk
 
     for fmt in ("wav", "h5"):
         path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=2.0), fmt)
-        gathered = _decode_json(path, block_size=4096)
+        gathered = decode_json(path, block_size=4096)
         with monkeypatch.context() as m:
             m.setattr(SampleFeed, "gather", 0)
-            assert _decode_json(path, block_size=4096) == gathered
-            assert _decode_json(path, block_size=999) == gathered
+            assert decode_json(path, block_size=4096) == gathered
+            assert decode_json(path, block_size=999) == gathered
 
 
 def test_pcm_decodes_the_same_through_codes_and_floats(tmp_path, monkeypatch):
     from toothcomb.decoders.readers.audio import AudioSource
 
     path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=2.0), "wav")
-    by_codes = _decode_json(path, block_size=5000)
+    by_codes = decode_json(path, block_size=5000)
     monkeypatch.setattr(AudioSource, "code_scale", property(lambda self: None))
-    assert _decode_json(path, block_size=5000) == by_codes
+    assert decode_json(path, block_size=5000) == by_codes
 
 
 # --------------------------------------------------------------------------- wheel, stats
@@ -609,9 +604,9 @@ def test_speed_trace_keeps_the_first_point_of_each_bucket():
 
 def test_edges_handed_over_in_any_batch_give_the_same_answer(tmp_path, monkeypatch):
     path, _ = make_capture(tmp_path, preset("idle-60-2-vr-soundcard", duration_s=2.0), "wav")
-    big = _decode_json(path, block_size=4096)
+    big = decode_json(path, block_size=4096)
     monkeypatch.setattr(pipeline, "EDGES_PER_HANDOVER", 1)
-    assert _decode_json(path, block_size=4096) == big
+    assert decode_json(path, block_size=4096) == big
 
 
 # --------------------------------------------------------------------------- progress bar

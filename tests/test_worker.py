@@ -11,12 +11,11 @@ import signal
 import sys
 import threading
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
 import soundfile as sf
-from conftest import make_capture
+from conftest import decode_json, make_capture
 from toothcomb.decoders import worker as worker_mod
 from toothcomb.decoders.errors import CaptureError, DecodeError
 from toothcomb.decoders.frontends.base import SampleFeed
@@ -58,10 +57,6 @@ def forks(monkeypatch):
     monkeypatch.setattr(worker_mod.FrontEndWorker, "__init__", record)
     return made
 
-
-def _json(path: Path, **opts: object) -> str:
-    r = decode_capture(str(path), DecodeOptions(**opts))  # type: ignore[arg-type]
-    return json.dumps(r.to_json(), sort_keys=True)
 
 
 def _soundcard(sc, rate: float = 48_000.0, bits: int = 16, full_scale_v: float = 1.0):
@@ -126,14 +121,14 @@ def _scenario(name: str):
 )
 def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
     path, _ = make_capture(tmp_path, _scenario(name), fmt)
-    alone = _json(path, worker_process=False, block_size=4096)
+    alone = decode_json(path, worker_process=False, block_size=4096)
     assert forks == []
-    assert _json(path, block_size=4096) == alone
+    assert decode_json(path, block_size=4096) == alone
     # the worker ran the crank's front end only, from a block boundary after the first seconds
     ((channels, start),) = forks
     assert len(channels) == 1 and start > 0 and start % 4096 == 0
     # a block size that divides nothing evenly: the worker's blocks are the decode's all the same
-    assert _json(path, block_size=3001) == alone
+    assert decode_json(path, block_size=3001) == alone
     if name == "valve":
         assert len(json.loads(alone)["actuators"]) == 1
     assert _no_child_left()
@@ -274,13 +269,13 @@ def test_a_decode_that_stops_early_stops_its_worker(tmp_path, forks, monkeypatch
 
 def test_no_worker_while_another_thread_runs(tmp_path, forks):
     path, _ = make_capture(tmp_path, _scenario("idle-60-2-vr-soundcard"), "wav")
-    alone = _json(path, worker_process=False)
+    alone = decode_json(path, worker_process=False)
     stop = threading.Event()
     other = threading.Thread(target=stop.wait)
     other.start()
     try:
         assert worker_mod.can_fork() is False
-        assert _json(path) == alone
+        assert decode_json(path) == alone
     finally:
         stop.set()
         other.join()
@@ -294,14 +289,14 @@ def test_a_fork_that_fails_leaves_the_decode_in_one_process(tmp_path, forks, mon
     import errno
 
     path, _ = make_capture(tmp_path, _scenario("idle-60-2-vr-soundcard"), "wav")
-    alone = _json(path, worker_process=False)
+    alone = decode_json(path, worker_process=False)
 
     def no_fork():
         raise OSError(errno.EAGAIN, "Resource temporarily unavailable")
 
     monkeypatch.setattr(worker_mod.os, "fork", no_fork)
     before = len(os.listdir("/proc/self/fd"))
-    assert _json(path) == alone
+    assert decode_json(path) == alone
     assert len(forks) == 1 and PIDS == []
     assert len(os.listdir("/proc/self/fd")) == before
 
