@@ -24,9 +24,11 @@ What it does:
    (sampled every 50 ms: shared pages count once); in a process of its own, reads the WAV in one
    piece as well when it fits ``--one-shot-mb``;
 3. for the CSV: times toothcomb's parse of the whole file (done once, when it is opened: every
-   row checked, the clock fitted, the values spooled for the decode's passes; by pyarrow's CSV
-   reader when the ``fast-csv`` extra is installed, else by numpy's parser) against
-   ``numpy.loadtxt`` on its first ``--loadtxt-rows`` rows (rows per second), the spooled values
+   row checked, the clock fitted, the values spooled for the decode's passes), once without
+   pyarrow (by the vectorised readers or numpy's parser) and, when the ``fast-csv`` extra is
+   installed, once by pyarrow's CSV reader, each ``--repeats`` times alternating with
+   ``numpy.loadtxt`` on the file's first ``--loadtxt-rows`` rows (rows per second, the fastest
+   of each), the spooled values
    read back, and the decode's time and peak memory;
 4. with ``--profile``: decodes each WAV once more under cProfile and prints the share of each
    stage (levels, first seconds, reading, front ends, tracker and cam locator, result) with
@@ -48,6 +50,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import importlib.util
 import json
 import os
 import shutil
@@ -172,6 +175,8 @@ STAGES = {
 #: decode only, for peak memory of CSV and HDF5 captures
 DECODE_ONLY = r"""
 import json, resource, sys, time
+if sys.argv[3:] == ["numpy"]:
+    sys.modules["pyarrow"] = None  # as if the fast-csv extra were not installed
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 t0 = time.perf_counter()
@@ -186,18 +191,11 @@ print(json.dumps({"decode_s": dt,
 #: blockwise CSV parse against numpy.loadtxt on the same rows
 CSV_PARSE = r"""
 import json, resource, sys, time
+if sys.argv[4] == "numpy":
+    sys.modules["pyarrow"] = None  # as if the fast-csv extra were not installed
 import numpy as np
 from toothcomb.decoders.readers import open_capture
-path, bs, rows = sys.argv[1], int(sys.argv[2]), int(sys.argv[3])
-t0 = time.perf_counter()
-src = open_capture(path)
-t_open = time.perf_counter() - t0
-n = 0
-t0 = time.perf_counter()
-for b in src.blocks(bs):
-    n += b.data.shape[0]
-t_blocks = time.perf_counter() - t0
-src.close()
+path, bs, rows, repeats = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[5])
 # the header: comment lines start with '#', then one line of names
 with open(path) as f:
     skip = 0
@@ -205,13 +203,25 @@ with open(path) as f:
         skip += 1
         if not line.startswith("#"):
             break
-t0 = time.perf_counter()
-x = np.loadtxt(path, delimiter=",", skiprows=skip, max_rows=rows, ndmin=2)
-t_np = time.perf_counter() - t0
+opens, loads = [], []
+for k in range(repeats):  # alternating, so that both see the machine's busy moments alike
+    t0 = time.perf_counter()
+    src = open_capture(path)
+    opens.append(time.perf_counter() - t0)
+    if k == 0:
+        n = 0
+        t0 = time.perf_counter()
+        for b in src.blocks(bs):
+            n += b.data.shape[0]
+        t_blocks = time.perf_counter() - t0
+    src.close()
+    t0 = time.perf_counter()
+    x = np.loadtxt(path, delimiter=",", skiprows=skip, max_rows=rows, ndmin=2)
+    loads.append(time.perf_counter() - t0)
 from toothcomb.decoders.readers.scopecsv import _arrow_modules
-print(json.dumps({"rows": n, "open_s": t_open, "blocks_s": t_blocks,
+print(json.dumps({"rows": n, "open_s": min(opens), "opens": opens, "blocks_s": t_blocks,
                   "arrow": _arrow_modules() is not None,
-                  "loadtxt_rows": int(x.shape[0]), "loadtxt_s": t_np,
+                  "loadtxt_rows": int(x.shape[0]), "loadtxt_s": min(loads), "loads": loads,
                   "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0}))
 """
 
@@ -269,6 +279,10 @@ def _children(pid: int) -> list[int]:
             return [int(x) for x in f.read().split()]
     except OSError:
         return []
+
+
+def _has_pyarrow() -> bool:
+    return importlib.util.find_spec("pyarrow") is not None
 
 
 def run(code: str, *args: str, marker: Path | None = None) -> dict:
@@ -398,24 +412,32 @@ def main(argv: list[str] | None = None) -> int:
             path = folder / f"scope-vr-{seconds:g}s.csv"
             made = make(path, scenario("vr", seconds, rate, "scope"))
             size = path.stat().st_size / 1e6
-            p = run(CSV_PARSE, str(path), str(a.block_size), str(a.loadtxt_rows))
-            ours = p["rows"] / p["open_s"]
-            theirs = p["loadtxt_rows"] / p["loadtxt_s"]
-            print(f"\nscope CSV, {seconds:g} s at {rate:g} Hz ({size:.0f} MB, {p['rows']} rows, "
+            print(f"\nscope CSV, {seconds:g} s at {rate:g} Hz ({size:.0f} MB, "
                   f"made in {made:.0f} s)")
-            how = ("by pyarrow's CSV reader (the fast-csv extra)" if p.get("arrow")
-                   else "by numpy's parser or the vectorised readers, in 2 MB chunks")
-            print(f"  parse (open: every row parsed once {how}, checked, the clock fitted, the "
-                  f"values spooled): {p['open_s']:.1f} s, {ours / 1e6:.2f} M rows/s, "
-                  f"{size / p['open_s']:.0f} MB/s")
-            print(f"  numpy.loadtxt on its first {p['loadtxt_rows']} rows: {p['loadtxt_s']:.1f} s, "
-                  f"{theirs / 1e6:.2f} M rows/s; ours/loadtxt {ours / theirs:.2f}")
-            print(f"  the parsed values read back in blocks (the decode's passes): "
-                  f"{p['blocks_s']:.1f} s, {p['rows'] / p['blocks_s'] / 1e6:.0f} M rows/s",
-                  flush=True)
-            r = run(DECODE_ONLY, str(path), str(a.block_size))
-            print(f"  decode: {r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
-                  f"{r['references']} reference events", flush=True)
+            ways = ["numpy", "arrow"] if _has_pyarrow() else ["numpy"]
+            for way in ways:
+                p = run(CSV_PARSE, str(path), str(a.block_size), str(a.loadtxt_rows), way,
+                        str(a.repeats))
+                ours = p["rows"] / p["open_s"]
+                theirs = p["loadtxt_rows"] / p["loadtxt_s"]
+                how = ("by pyarrow's CSV reader (the fast-csv extra)" if p.get("arrow")
+                       else "without pyarrow: by the vectorised readers or numpy's parser, in "
+                       "512 kB chunks")
+                spread = ", ".join(f"{t:.1f}" for t in p["opens"])
+                print(f"  parse {how} (open: every row parsed once, checked, the clock fitted, "
+                      f"the values spooled), best of {a.repeats} ({spread} s): "
+                      f"{p['open_s']:.1f} s, {p['rows']} rows, {ours / 1e6:.2f} M rows/s, "
+                      f"{size / p['open_s']:.0f} MB/s")
+                spread = ", ".join(f"{t:.2f}" for t in p["loads"])
+                print(f"    numpy.loadtxt on its first {p['loadtxt_rows']} rows, after each: best "
+                      f"{p['loadtxt_s']:.2f} s ({spread}), {theirs / 1e6:.2f} M rows/s; "
+                      f"ours/loadtxt {ours / theirs:.2f}")
+                print(f"    the parsed values read back in blocks (the decode's passes): "
+                      f"{p['blocks_s']:.1f} s, {p['rows'] / p['blocks_s'] / 1e6:.0f} M rows/s",
+                      flush=True)
+                r = run(DECODE_ONLY, str(path), str(a.block_size), way)
+                print(f"    decode: {r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
+                      f"{r['references']} reference events", flush=True)
     finally:
         if not a.keep:
             shutil.rmtree(folder, ignore_errors=True)

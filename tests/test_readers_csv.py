@@ -681,6 +681,7 @@ def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) ->
     progress in bytes (to the file's size), and readers that do not ask for it are not given
     the callback."""
     monkeypatch.setattr(scopecsv, "CHUNK_BYTES", 64 * 1024)
+    monkeypatch.setattr(scopecsv, "ARROW_BLOCK_BYTES", 16 * 1024)  # when pyarrow reads it
     path, _ = _long_csv(tmp_path)
     calls: list[tuple[int, int]] = []
     with open_capture(path, progress=lambda d, t: calls.append((d, t))):
@@ -737,3 +738,73 @@ def test_channel_values_read_by_their_distinct_texts_are_numpy_s() -> None:
         assert fields is None or scopecsv._few_values(fields, [1, 2]) is None, text
     many = "".join(f"{k},{k}.5,1\n" for k in range(scopecsv.MAX_DISTINCT + 1))
     assert scopecsv._few_values(scopecsv._fields(many.encode(), lay), [1, 2]) is None
+
+
+def test_field_keys_are_equal_exactly_when_the_texts_are() -> None:
+    """A field's 128-bit key (its bytes, zeros after them) must tell every two different texts
+    of up to 16 characters apart, wherever in the chunk (and so at whatever alignment) the field
+    starts, and give equal texts equal keys."""
+    rng = np.random.default_rng(99)
+    alphabet = list("0123456789.-+eE")
+    texts = ["".join(rng.choice(alphabet, int(rng.integers(1, 17)))) for _ in range(3000)]
+    texts += ["1", "10", "100", "1" * 16, "1" * 15, "0", "00"]  # prefixes of each other
+    rows = rng.choice(texts, 20000).tolist()
+    raw = "".join(f"{k},{t}\n" for k, t in enumerate(rows)).encode()
+    f = scopecsv._fields(raw, scopecsv._Layout(",", ".", 2, False, 0, 1))
+    assert f is not None
+    k0, k1 = scopecsv._text_keys(f, 1)
+    keys = list(zip(k0.tolist(), k1.tolist(), strict=True))
+    by_key: dict[tuple[int, int], str] = {}
+    for key, text in zip(keys, rows, strict=True):
+        assert by_key.setdefault(key, text) == text  # one key, one text
+    assert len(by_key) == len(set(rows))  # one text, one key
+    # the text comes back from its key: its number, or None for text that is not one
+    for key, text in by_key.items():
+        try:
+            want: float | None = float(text)
+        except ValueError:
+            want = None
+        assert scopecsv._key_value(*key) == want, text
+    lay = scopecsv._Layout(",", ".", 2, False, 0, 1)
+    wide = b"0,12345678901234567\n"  # 17 characters: wider than a key holds
+    assert scopecsv._text_keys(scopecsv._fields(wide, lay), 1) is None
+    assert scopecsv._text_keys(scopecsv._fields(b"0,\n", lay), 1) is None  # empty
+    # a zero byte would make "5" and "5\0" one key: a chunk holding one is not plain, and
+    # numpy's parser reads it (and names the line)
+    assert scopecsv._fields(b"0,5\n1,5\x00\n", lay) is None
+
+
+@pytest.mark.parametrize("bits", [4, 8, 16])
+def test_hash_table_places_every_key_with_its_equals(monkeypatch, bits: int) -> None:
+    """Each key's place must point at a copy of that key in the list of distinct keys, the list
+    must hold each distinct key once (source: numpy.unique gives the reference set), and a table
+    kept from call to call must give what a fresh one gives. A small table forces collisions
+    and more rounds; when the rounds run out the answer is None, never a wrong one."""
+    monkeypatch.setattr(scopecsv, "HASH_BITS", bits)
+    rng = np.random.default_rng(bits)
+    table = scopecsv._KeyTable()
+    answered = 0
+    for trial in range(30):
+        distinct = int(rng.integers(1, 300))
+        pool0 = rng.integers(0, 2**63, distinct, dtype=np.uint64)
+        pool1 = rng.integers(0, 3, distinct, dtype=np.uint64)  # many keys alike in one word
+        pick = rng.integers(0, distinct, int(rng.integers(1, 5000)))
+        k0, k1 = pool0[pick], pool1[pick]
+        kept = scopecsv._key_index(k0, k1, 4096, table)
+        fresh = scopecsv._key_index(k0, k1, 4096)
+        assert (kept is None) == (fresh is None), trial
+        if kept is None:
+            assert bits < 16, trial  # 16 bits and 300 keys: four rounds are plenty
+            continue
+        answered += 1
+        for index, found in (kept, fresh):
+            assert len(found) == len(set(found))
+            pairs = np.unique(np.stack([k0, k1], axis=1), axis=0)
+            assert sorted(found) == sorted(map(tuple, pairs.tolist()))
+            got = np.array(found, dtype=np.uint64)[index]
+            assert np.array_equal(got[:, 0], k0) and np.array_equal(got[:, 1], k1), trial
+        assert kept[1] == fresh[1]
+    assert answered >= (30 if bits == 16 else 5)
+    few = np.arange(10, dtype=np.uint64)
+    assert scopecsv._key_index(few, few, 9, table) is None  # more distinct keys than allowed
+    assert scopecsv._key_index(few, few, 10, table) is not None
