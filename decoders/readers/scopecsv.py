@@ -890,9 +890,16 @@ def _text_keys(f: _Fields, col: int) -> tuple[np.ndarray, np.ndarray] | None:
 
 
 class _KeyTable:
-    """The hash table of :func:`_key_index`, kept from call to call. A call writes its buckets
-    before it reads them (and clears the marks it set), so the arrays need no clearing; fresh
-    ones would cost a page fault every 4 kB at each call, more than the hashing itself."""
+    """The hash tables of :func:`_few_values`, kept from chunk to chunk.
+
+    The scratch table of :func:`_key_index`: a call writes its buckets before it reads them (and
+    clears the marks it set), so the arrays need no clearing; fresh ones would cost a page fault
+    every 4 kB at each call, more than the hashing itself.
+
+    The values met so far (:meth:`look_up`, :meth:`remember`): a capture's levels recur all
+    along it, so most chunks find every field's value here and convert nothing. Each bucket
+    (hashed as in the first round of :func:`_key_index`) holds at most one key and its value,
+    the first one stored there."""
 
     def __init__(self) -> None:
         size = 1 << HASH_BITS
@@ -900,6 +907,38 @@ class _KeyTable:
         self.rep1 = np.empty(size, np.uint64)
         self.slot = np.empty(size, np.intp)  # the place of a bucket's key among those found
         self.used = np.zeros(size, dtype=bool)  # buckets written this round
+        self.known0 = np.zeros(size, np.uint64)  # the values met: key, value, whether any
+        self.known1 = np.zeros(size, np.uint64)
+        self.value = np.zeros(size)
+        self.known = np.zeros(size, dtype=bool)
+
+    def look_up(
+        self, k0: np.ndarray, k1: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(each key's value where known, whether known, its bucket)."""
+        h = _hash(k0, k1, *_HASH_ROUNDS[0])
+        hit = self.known[h]
+        hit &= self.known0[h] == k0
+        hit &= self.known1[h] == k1
+        return self.value[h], hit, h
+
+    def remember(self, k0: np.ndarray, k1: np.ndarray, values: np.ndarray) -> None:
+        """Keep distinct keys' values, in the buckets still free."""
+        h = _hash(k0, k1, *_HASH_ROUNDS[0])
+        free = ~self.known[h]
+        h, k0, k1, values = h[free], k0[free], k1[free], values[free]
+        # keys sharing a free bucket: the same one (the last) wins in all four arrays
+        self.known0[h] = k0
+        self.known1[h] = k1
+        self.value[h] = values
+        self.known[h] = True
+
+
+def _hash(k0: np.ndarray, k1: np.ndarray, m0: int, m1: int) -> np.ndarray:
+    """Each 128-bit key's bucket: multiplicative hashing by the odd ``m0`` and ``m1``, the top
+    :data:`HASH_BITS` bits of the product's sum."""
+    h = ((k0 * np.uint64(m0)) ^ (k1 * np.uint64(m1))) >> np.uint64(64 - HASH_BITS)
+    return h.astype(np.intp)
 
 
 def _key_index(
@@ -921,11 +960,9 @@ def _key_index(
     index = np.empty(len(k0), dtype=np.intp)
     found: list[tuple[int, int]] = []
     todo: np.ndarray | None = None  # rows still without a place (None: all)
-    shift = np.uint64(64 - HASH_BITS)
     for m0, m1 in _HASH_ROUNDS:
         a, b = (k0, k1) if todo is None else (k0[todo], k1[todo])
-        h = ((a * np.uint64(m0)) ^ (b * np.uint64(m1))) >> shift
-        h = h.astype(np.intp)
+        h = _hash(a, b, m0, m1)
         rep0[h] = a
         rep1[h] = b
         ok = (rep0[h] == a) & (rep1[h] == b)
@@ -972,28 +1009,41 @@ def _few_values(
     """Columns ``cols`` of a plain chunk, read by their distinct texts, when each holds few
     distinct texts (:data:`MAX_DISTINCT`) of at most :data:`KEY_CHARS` characters of a plain
     number (digits, point, sign, exponent): a scope's converter gives a channel a few hundred
-    levels at most. Each text becomes a 128-bit key (:func:`_text_keys`), the keys are told
-    apart by a hash table (:func:`_key_index`), and each distinct text is converted once, by
-    Python's ``float`` (correctly rounded, as numpy's own parser is). None otherwise.
-    ``table``: the hash table to use (see :class:`_KeyTable`).
+    levels at most. Each text becomes a 128-bit key (:func:`_text_keys`); keys whose value an
+    earlier chunk found are looked up (:meth:`_KeyTable.look_up`); the others are told apart by
+    a hash table (:func:`_key_index`), and each distinct text is converted once, by Python's
+    ``float`` (correctly rounded, as numpy's own parser is). None otherwise. ``table``: the hash
+    tables to use and to keep what is found in (see :class:`_KeyTable`).
 
     >>> lay = _Layout(",", ".", 3, False, 0, 1)
     >>> _few_values(_fields(b"0.1,-0.5,1\\n0.2,0.25,1E1\\n0.3,-0.5,0\\n", lay), [1, 2]).tolist()
     [[-0.5, 1.0], [0.25, 10.0], [-0.5, 0.0]]
     """
+    t = table if table is not None else _KeyTable()
     out = np.empty((f.rows, len(cols)))
     for j, c in enumerate(cols):
         keys = _text_keys(f, c)
         if keys is None:
             return None
-        got = _key_index(*keys, MAX_DISTINCT, table)
-        if got is None:
-            return None
-        index, found = got
-        values = [_key_value(*key) for key in found]
-        if None in values:
-            return None
-        out[:, j] = np.array(values)[index]
+        k0, k1 = keys
+        column, hit, _ = t.look_up(k0, k1)
+        if not hit.all():
+            miss = np.flatnonzero(~hit)
+            got = _key_index(k0[miss], k1[miss], MAX_DISTINCT, t)
+            if got is None:
+                return None
+            index, found = got
+            values = [_key_value(*key) for key in found]
+            if None in values:
+                return None
+            new = np.array(values)
+            column[miss] = new[index]
+            t.remember(
+                np.array([a for a, _ in found], np.uint64),
+                np.array([b for _, b in found], np.uint64),
+                new,
+            )
+        out[:, j] = column
     return out
 
 
