@@ -35,6 +35,10 @@ What it does:
    what it comes to in seconds and in multiples of the read;
 5. removes the scratch folder unless ``--keep DIR`` names one (files found there are reused).
 
+Every measuring process first sets the C allocator's thresholds as the command line does
+(``toothcomb.decoders.heap.keep_freed_memory``; the reads and ``numpy.loadtxt`` run with them as
+well); ``--default-heap`` leaves them as they are.
+
     python benchmarks/scale.py                        # 1, 10, 60 min at 192 kHz: 9 GB, ~30 min
     python benchmarks/scale.py --minutes 1 10         # shorter
     python benchmarks/scale.py --keep /tmp/tc-scale   # keep (and reuse) the captures
@@ -62,6 +66,8 @@ from pathlib import Path
 
 #: run in a fresh process: read side by side with the decode, then peak memory
 MEASURE = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import json, resource, sys, time
 import numpy as np, soundfile as sf
 from toothcomb.decoders.options import DecodeOptions
@@ -108,6 +114,8 @@ print(json.dumps({
 #: the whole WAV read in one piece (its own process: the array does not count in the decode's
 #: memory)
 ONE_SHOT = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import json, sys, time
 import soundfile as sf
 t0 = time.perf_counter()
@@ -120,6 +128,8 @@ print(json.dumps({"one_shot_s": time.perf_counter() - t0}))
 #: directly, from a comprehension or closure of its own or through the edge pass; a name
 #: missing in this version counts 0
 PROFILE = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import cProfile, json, pstats, sys, time
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
@@ -174,6 +184,8 @@ STAGES = {
 
 #: decode only, for peak memory of CSV and HDF5 captures
 DECODE_ONLY = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import json, resource, sys, time
 if sys.argv[3:] == ["numpy"]:
     sys.modules["pyarrow"] = None  # as if the fast-csv extra were not installed
@@ -190,6 +202,8 @@ print(json.dumps({"decode_s": dt,
 
 #: blockwise CSV parse against numpy.loadtxt on the same rows
 CSV_PARSE = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import json, resource, sys, time
 if sys.argv[4] == "numpy":
     sys.modules["pyarrow"] = None  # as if the fast-csv extra were not installed
@@ -226,6 +240,8 @@ print(json.dumps({"rows": n, "open_s": min(opens), "opens": opens, "blocks_s": t
 """
 
 BASELINE = r"""
+from toothcomb.decoders.heap import keep_freed_memory
+keep_freed_memory()  # as the command line does, unless --default-heap (see run())
 import json, resource
 import numpy, scipy, soundfile, h5py, rich
 import toothcomb.decoders.pipeline
@@ -281,6 +297,11 @@ def _children(pid: int) -> list[int]:
         return []
 
 
+#: run the measurements with the C allocator's own thresholds (``--default-heap``), not those
+#: the command line sets (toothcomb.decoders.heap)
+DEFAULT_HEAP = False
+
+
 def _has_pyarrow() -> bool:
     return importlib.util.find_spec("pyarrow") is not None
 
@@ -292,6 +313,8 @@ def run(code: str, *args: str, marker: Path | None = None) -> dict:
     50 ms (Linux; 0 elsewhere), which counts the pages a forked worker shares with the decode
     once. (Sampling reads the processes' page tables, so it is kept out of the timed part.)"""
     with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        if DEFAULT_HEAP:
+            code = code.replace("keep_freed_memory()  #", "pass  #")
         proc = subprocess.Popen([sys.executable, "-c", code, *args], stdout=out, stderr=err,
                                 text=True)
         pss = 0
@@ -353,9 +376,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--only", nargs="+", default=["wav", "csv", "hdf5"],
                     choices=["wav", "csv", "hdf5"], help="parts to run")
     ap.add_argument("--keep", metavar="DIR", help="keep (and reuse) the captures in DIR")
+    ap.add_argument("--default-heap", action="store_true",
+                    help="leave the C allocator's thresholds as they are (the command line "
+                         "sets them: toothcomb.decoders.heap)")
     ap.add_argument("--profile", action="store_true",
                     help="also profile one decode of each WAV and print where its time goes")
     a = ap.parse_args(argv)
+    global DEFAULT_HEAP
+    DEFAULT_HEAP = a.default_heap
 
     folder = Path(a.keep) if a.keep else Path(tempfile.mkdtemp(prefix="toothcomb-scale-"))
     folder.mkdir(parents=True, exist_ok=True)

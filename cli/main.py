@@ -24,6 +24,7 @@ from typing import IO, Any
 from rich.console import Console
 from rich.text import Text
 from toothcomb.decoders.errors import CaptureError, ToothcombError, UsageError
+from toothcomb.decoders.heap import keep_freed_memory
 from toothcomb.decoders.model import DEFAULT_BLOCK_SIZE
 from toothcomb.decoders.options import DecodeOptions
 
@@ -963,6 +964,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _exit_status(exc.code)
     debug = _flag(args, "debug")
     run: Callable[[argparse.Namespace, Streams], int] = args.run
+    keep_freed_memory()  # freed arrays are reused instead of faulted in again (see heap)
     try:
         return run(args, streams)
     except ToothcombError as err:

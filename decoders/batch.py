@@ -40,6 +40,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from .errors import ToothcombError, UsageError
+from .heap import keep_freed_memory
 from .options import DecodeOptions
 from .plugins import READERS, plugins
 from .readers.base import split_dataset_path
@@ -657,7 +658,9 @@ def local_executor(jobs: int | None = None) -> ProcessPoolExecutor:
     if "forkserver" in multiprocessing.get_all_start_methods():
         context = multiprocessing.get_context("forkserver")
         context.set_forkserver_preload(_PRELOAD)
-    return ProcessPoolExecutor(max_workers=jobs or default_jobs(), mp_context=context)
+    return ProcessPoolExecutor(
+        max_workers=jobs or default_jobs(), mp_context=context, initializer=keep_freed_memory
+    )
 
 
 #: what ``--dask`` takes to start a cluster on this machine instead of joining one
