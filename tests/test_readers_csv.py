@@ -708,6 +708,7 @@ def test_channel_values_read_by_their_distinct_texts_are_numpy_s() -> None:
         lambda v: f"{v:.2E}", lambda v: repr(float(v)), lambda v: f"{v:.0f}.",
         lambda v: f"{v:.3f}".replace("0.", ".", 1),
     ]
+    shared = scopecsv._KeyTable()
     for trial in range(200):
         levels = rng.normal(0.0, 10.0 ** rng.integers(-4, 3), int(rng.integers(1, 300)))
         levels = np.round(levels * 256) / 256  # a converter's steps
@@ -727,6 +728,10 @@ def test_channel_values_read_by_their_distinct_texts_are_numpy_s() -> None:
             continue
         assert got is not None, (trial, a[:3])
         assert got.tobytes() == want.tobytes(), trial
+        # the same with the tables kept from chunk to chunk, as the checking pass keeps them:
+        # values met in earlier trials are looked up, the rest found and kept
+        kept = scopecsv._few_values(fields, [1, 2], shared)
+        assert kept is not None and kept.tobytes() == want.tobytes(), trial
     for text in [
         "0.1,nan,1\n",  # not a plain number
         "0.1, 1,2\n",  # a space
@@ -808,3 +813,30 @@ def test_hash_table_places_every_key_with_its_equals(monkeypatch, bits: int) -> 
     few = np.arange(10, dtype=np.uint64)
     assert scopecsv._key_index(few, few, 9, table) is None  # more distinct keys than allowed
     assert scopecsv._key_index(few, few, 10, table) is not None
+
+
+def test_values_kept_from_chunk_to_chunk_stay_right_when_buckets_are_shared(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """With a table of 64 buckets, texts from chunk after chunk share buckets: a text must get
+    its own value whether it was kept, found again, or met in a bucket another text holds --
+    also texts whose first eight characters are alike (they differ in the key's second word).
+    source: numpy.loadtxt reads the same text."""
+    monkeypatch.setattr(scopecsv, "HASH_BITS", 6)
+    rng = np.random.default_rng(64)
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    table = scopecsv._KeyTable()
+    read = 0
+    for chunk in range(300):
+        levels = rng.integers(-500, 500, int(rng.integers(1, 12))) / 64
+        a = [f"{v:g}" for v in rng.choice(levels, 200)]
+        c = [f"0.0{k:07d}" for k in rng.integers(10000, 10040, 200)]  # "0.000010" and more
+        text = "".join(f"{k},{x},{y}\n" for k, (x, y) in enumerate(zip(a, c, strict=True)))
+        got = scopecsv._few_values(scopecsv._fields(text.encode(), lay), [1, 2], table)
+        if got is None:
+            continue  # the rounds ran out of multipliers: numpy's parser would read the chunk
+        read += 1
+        want = np.loadtxt(io.StringIO(text), delimiter=",", usecols=(1, 2), ndmin=2)
+        assert got.tobytes() == want.tobytes(), chunk
+    assert read > 150
+    assert np.count_nonzero(table.known0) > 32  # the table did keep values

@@ -899,7 +899,8 @@ class _KeyTable:
     The values met so far (:meth:`look_up`, :meth:`remember`): a capture's levels recur all
     along it, so most chunks find every field's value here and convert nothing. Each bucket
     (hashed as in the first round of :func:`_key_index`) holds at most one key and its value,
-    the first one stored there."""
+    the first one stored there; an empty bucket holds the key 0, which no field has (a field is
+    never empty)."""
 
     def __init__(self) -> None:
         size = 1 << HASH_BITS
@@ -907,31 +908,28 @@ class _KeyTable:
         self.rep1 = np.empty(size, np.uint64)
         self.slot = np.empty(size, np.intp)  # the place of a bucket's key among those found
         self.used = np.zeros(size, dtype=bool)  # buckets written this round
-        self.known0 = np.zeros(size, np.uint64)  # the values met: key, value, whether any
+        self.known0 = np.zeros(size, np.uint64)  # the values met: key, value
         self.known1 = np.zeros(size, np.uint64)
         self.value = np.zeros(size)
-        self.known = np.zeros(size, dtype=bool)
 
     def look_up(
         self, k0: np.ndarray, k1: np.ndarray
     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(each key's value where known, whether known, its bucket)."""
         h = _hash(k0, k1, *_HASH_ROUNDS[0])
-        hit = self.known[h]
-        hit &= self.known0[h] == k0
+        hit = self.known0[h] == k0
         hit &= self.known1[h] == k1
         return self.value[h], hit, h
 
     def remember(self, k0: np.ndarray, k1: np.ndarray, values: np.ndarray) -> None:
         """Keep distinct keys' values, in the buckets still free."""
         h = _hash(k0, k1, *_HASH_ROUNDS[0])
-        free = ~self.known[h]
+        free = self.known0[h] == 0
         h, k0, k1, values = h[free], k0[free], k1[free], values[free]
-        # keys sharing a free bucket: the same one (the last) wins in all four arrays
+        # keys sharing a free bucket: the same one (the last) wins in all three arrays
         self.known0[h] = k0
         self.known1[h] = k1
         self.value[h] = values
-        self.known[h] = True
 
 
 def _hash(k0: np.ndarray, k1: np.ndarray, m0: int, m1: int) -> np.ndarray:
