@@ -31,7 +31,7 @@ import sys
 M_TRIM_THRESHOLD = -1
 M_MMAP_THRESHOLD = -3
 #: blocks up to this size come from the heap (glibc's upper limit on 64-bit systems)
-MMAP_THRESHOLD = 4 * 1024 * 1024
+MMAP_THRESHOLD = 8 * 1024 * 1024
 #: free memory at the top of the heap kept mapped, up to this much
 TRIM_THRESHOLD = 32 * 1024 * 1024
 
