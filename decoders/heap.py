@@ -13,8 +13,9 @@ parses each); a decode of a WAV changed by less than its runs differ.
 :func:`keep_freed_memory` sets the thresholds once for the process: blocks up to
 :data:`MMAP_THRESHOLD` come from the heap, and up to :data:`TRIM_THRESHOLD` of free memory at the
 heap's top stays mapped for the next blocks. The freed memory is reused, not added to: in the
-benchmark (``benchmarks/scale.py``) the peaks of the WAV, CSV and HDF5 decodes moved by less
-than 10 MiB; only what a process holds between its peaks stays higher. The
+benchmark (``benchmarks/scale.py``) the decode process's peak moved by less than 10 MiB for WAV,
+CSV and HDF5 alike; what a process holds between its peaks stays higher, most in the worker
+process of an hour of WAV (158-160 MiB against 134-152). The
 command line calls it when it starts, as do the worker processes of a local batch; a program
 that uses the library may call it itself. (source: the Linux man-pages project, mallopt(3),
 from memory: the mmap threshold starts at 128 kB and rises to the size of a larger block freed,
