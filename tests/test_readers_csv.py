@@ -764,6 +764,7 @@ def test_field_keys_are_equal_exactly_when_the_texts_are() -> None:
         assert by_key.setdefault(key, text) == text  # one key, one text
     assert len(by_key) == len(set(rows))  # one text, one key
     # the text comes back from its key: its number, or None for text that is not one
+    # source: Python's float() (a correctly rounded conversion of decimal text)
     for key, text in by_key.items():
         try:
             want: float | None = float(text)
