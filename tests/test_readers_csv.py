@@ -676,6 +676,58 @@ def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
         assert fields is None or scopecsv._plain_first_column(fields) is None, text
 
 
+def test_scientific_time_stamps_are_read_as_numpy_reads_them() -> None:
+    """A time column in scientific notation at a fixed precision ("-2.500000e-03", as many
+    scopes print it) is read without the general parser; every value must be the one numpy's
+    own text parser gives, to the last bit (the sign of zero too), and anything else must be
+    left to that parser."""
+    rng = np.random.default_rng(2024)
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    forms = [
+        lambda t: f"{t:.6e}", lambda t: f"{t:.9E}", lambda t: f"{t:+.4e}", lambda t: f"{t:.0e}",
+        lambda t: f"{t:.14e}", lambda t: f"{t:.3e}".replace("e", "E"),
+    ]
+    read = 0
+    for trial in range(300):
+        form = forms[trial % len(forms)]
+        n = int(rng.integers(1, 400))
+        step = 10.0 ** int(rng.integers(-9, 2))
+        t0 = -step * int(rng.integers(0, 2 * n + 1))  # from before the trigger, often through 0
+        stamps = [form(t0 + k * step) for k in range(n)]
+        text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
+        raw = text.encode()
+        fields = scopecsv._fields(raw, lay)
+        assert fields is not None, trial
+        got = scopecsv._scientific_first_column(fields)
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        want = np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
+        mantissa = stamps[0].lower().partition("e")[0]
+        places = len(mantissa.partition(".")[2])
+        if len({len(x.lstrip("+-")) for x in stamps}) > 1 or any(  # e+100 beside e+99, or
+            abs(int(x.lower().partition("e")[2]) - places) > 22 for x in stamps  # 10**23 on
+        ):
+            assert got is None, trial
+            continue
+        assert got is not None, (trial, stamps[:2])
+        assert got.tobytes() == want.tobytes(), trial
+        read += 1
+    assert read > 250
+    for text in [
+        "1e-3,1,2\n0.002,1,2\n",  # notations mixed
+        "1.0e-3,1,2\n1.0e-10,1,2\n",  # exponents of different lengths
+        "1.0e-30,1,2\n",  # 10**31: not exact as a double
+        "1.234567890123456e-3,1,2\n",  # 16 digits: more than an exact integer holds
+        "1.0e-3,1,2\n1.0x-3,1,2\n",  # not an exponent mark
+        "1.0e-3,1,2\n1.0e*3,1,2\n",  # not an exponent sign
+        "1.0e-3,1,2\n*1.0e-3,1,2\n",  # not a sign
+        "1.0e-3,1,2\n1.0e-3a,1,2\n",  # a letter in the digits
+        "e-3,1,2\n",  # no mantissa
+        "0.001,1,2\n",  # no exponent: the plain reader's
+    ]:
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is None or scopecsv._scientific_first_column(fields) is None, text
+
+
 def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) -> None:
     """Opening a CSV parses all of it, which takes most of a long CSV's decode: it reports its
     progress in bytes (to the file's size), and readers that do not ask for it are not given

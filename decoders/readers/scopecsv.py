@@ -23,8 +23,9 @@ than 1 % of it (allowing for the digits the stamps were printed with) is an erro
 
 ``open()`` parses the file once, chunk by chunk, to check every row and fit the clock: a file
 over 16 MB by pyarrow's CSV reader when the ``fast-csv`` extra is installed, else by vectorised
-readers where a chunk is plain (a fixed-width time column read by integer arithmetic, channels
-with few distinct values read by converting each distinct text once) and by numpy's C parser
+readers where a chunk is plain (a time column printed at a fixed precision, with a point or in
+scientific notation, read by integer arithmetic; channels with few distinct values read by
+converting each distinct text once) and by numpy's C parser
 where it is not or where that is faster (the same numbers every way); memory stays bounded
 whatever the file size. The channels' values it parses are kept in an anonymous temporary file
 (the *spool*, float64, removed by the system when it is closed or the process ends), so the
@@ -853,6 +854,98 @@ def _plain_first_column(f: _Fields) -> np.ndarray | None:
     return -values if sign else values
 
 
+#: the powers of ten a double holds exactly: 10**22 is the last (5**22 < 2**53)
+_EXACT_TENS = np.array([10.0**k for k in range(23)])
+#: a number in scientific notation, as :func:`_scientific_first_column` takes it apart
+_SCIENTIFIC = re.compile(r"[+-]?(\d*)(\.?)(\d*)[eE]([+-]?)(\d{1,3})")
+
+
+def _scientific_first_column(f: _Fields) -> np.ndarray | None:
+    """The first column of a plain chunk printed in scientific notation at a fixed precision,
+    as many scopes print their time column ("-2.500000e-03", "1.2500E+00"): every field laid
+    out as the first one counted from its end (the mantissa's digits and point, the exponent
+    mark, the exponent's sign and digits), with or without a sign in front. None otherwise.
+
+    The values are those of a correctly rounded conversion, as numpy's own parser gives: the
+    mantissa's digits (at most 15) form an integer below 2**53, exact as a float; with k the
+    exponent less the digits after the point, 10**|k| is exact for |k| <= 22, and one IEEE
+    multiplication or division of two exact values is correctly rounded (the fast path of
+    W. D. Clinger, "How to Read Floating Point Numbers Accurately", PLDI 1990); a chunk with a
+    larger |k| is left to numpy's parser.
+
+    >>> lay = _Layout(",", ".", 2, False, 0, 1)
+    >>> _scientific_first_column(_fields(b"-2.5e-03,5\\n2.5e-03,6\\n1.0E+01,7\\n", lay)).tolist()
+    [-0.0025, 0.0025, 10.0]
+    >>> _scientific_first_column(_fields(b"0.001,5\\n", lay)) is None
+    True
+    """
+    b = f.b
+    head = bytes(b[: int(f.seps[0])]).decode("latin-1")
+    m = _SCIENTIFIC.fullmatch(head)
+    if m is None or not (m.group(1) or m.group(3)):
+        return None
+    whole, point, frac, exp_sign, exp = m.groups()
+    if len(whole) + len(frac) > PLAIN_DIGITS:
+        return None
+    body = len(head) - (1 if head[0] in "+-" else 0)  # the part every field has, from its end
+    starts, ends = f.starts(0), f.ends(0)
+    width = ends - starts
+    signed = width == body + 1
+    if not np.all(signed | (width == body)):
+        return None
+    first = ends - body  # where each field's body starts
+    zero = np.uint8(ord("0"))
+
+    def digits(offset: int, count: int) -> np.ndarray | None:
+        """The integer that ``count`` digits from ``offset`` in each body make."""
+        out = np.zeros(len(first), dtype=np.int64)
+        for c in range(offset, offset + count):
+            col = b[first + c] - zero  # wraps below '0': anything not a digit is over 9
+            if np.any(col > 9):
+                return None
+            out *= 10
+            out += col
+        return out
+
+    mantissa = digits(0, len(whole))
+    if mantissa is None:
+        return None
+    at = len(whole)
+    if point and not np.all(b[first + at] == ord(".")):
+        return None
+    at += len(point)
+    after = digits(at, len(frac))
+    if after is None:
+        return None
+    mantissa = mantissa * 10 ** len(frac) + after
+    at += len(frac)
+    mark = b[first + at]
+    if not np.all((mark == ord("e")) | (mark == ord("E"))):
+        return None
+    at += 1
+    exp_negative = np.zeros(len(first), dtype=bool)
+    if exp_sign:
+        s = b[first + at]
+        exp_negative = s == ord("-")
+        if not np.all(exp_negative | (s == ord("+"))):
+            return None
+        at += 1
+    power = digits(at, len(exp))
+    if power is None:
+        return None
+    k = np.where(exp_negative, -power, power) - len(frac)
+    if np.any(np.abs(k) > 22):
+        return None
+    tens = _EXACT_TENS[np.abs(k)]
+    values = np.where(k >= 0, mantissa * tens, mantissa / tens)
+    sign = b[starts[signed]]
+    if not np.all((sign == ord("-")) | (sign == ord("+"))):
+        return None
+    negative = np.zeros(len(first), dtype=bool)
+    negative[signed] = sign == ord("-")
+    return np.where(negative, -values, values)
+
+
 #: widest field :func:`_few_values` reads (its characters make a 128-bit key)
 KEY_CHARS = 16
 #: most distinct values a column of a chunk may hold for :func:`_few_values` to read it
@@ -1055,9 +1148,12 @@ def _read_plain(
     chunk: _Chunk, f: _Fields, layout: _Layout, shown: str, table: _KeyTable | None = None
 ) -> tuple[np.ndarray, np.ndarray] | None:
     """(the time column, the channel columns) of a plain chunk, the time column read by
-    :func:`_plain_first_column` and channels with few distinct values by :func:`_few_values`
+    :func:`_plain_first_column` or :func:`_scientific_first_column` and channels with few
+    distinct values by :func:`_few_values`
     (numpy's parser reads the other channels); None when the time column is not plain."""
     t = _plain_first_column(f)
+    if t is None:
+        t = _scientific_first_column(f)
     if t is None:
         return None
     cols = layout.channel_cols
