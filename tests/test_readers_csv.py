@@ -635,6 +635,19 @@ def test_a_decode_parses_the_text_once_and_leaves_no_file(tmp_path: Path, monkey
     assert list(scratch.iterdir()) == []
 
 
+def _time_column_both_ways(
+    stamps: list[str], reader, rng: np.random.Generator
+) -> tuple[np.ndarray | None, np.ndarray]:
+    """A plain chunk of ``stamps`` and two channels: (its time column as ``reader`` reads it,
+    as numpy.loadtxt reads it)."""
+    text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
+    raw = text.encode()
+    fields = scopecsv._fields(raw, scopecsv._Layout(",", ".", 3, False, 0, 1))
+    assert fields is not None
+    # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+    return reader(fields), np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
+
+
 def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
     """A plain time column (fixed width, digits and a point) is read without the general
     parser; every value must be the one numpy's own text parser gives, to the last bit, and
@@ -653,13 +666,7 @@ def test_plain_time_stamps_are_read_as_numpy_reads_them() -> None:
         stamps = [
             sign + (d[:whole] + ("." + d[whole:] if decimals else "")) for d in digits
         ]
-        text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
-        raw = text.encode()
-        fields = scopecsv._fields(raw, lay)
-        assert fields is not None, trial
-        got = scopecsv._plain_first_column(fields)
-        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
-        want = np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
+        got, want = _time_column_both_ways(stamps, scopecsv._plain_first_column, rng)
         assert got is not None, trial
         assert got.tobytes() == want.tobytes(), trial  # bit for bit, the sign of zero too
     for text in [
@@ -694,13 +701,7 @@ def test_scientific_time_stamps_are_read_as_numpy_reads_them() -> None:
         step = 10.0 ** int(rng.integers(-9, 2))
         t0 = -step * int(rng.integers(0, 2 * n + 1))  # from before the trigger, often through 0
         stamps = [form(t0 + k * step) for k in range(n)]
-        text = "".join(f"{s},{rng.normal():.4g},{int(rng.integers(0, 5))}\n" for s in stamps)
-        raw = text.encode()
-        fields = scopecsv._fields(raw, lay)
-        assert fields is not None, trial
-        got = scopecsv._scientific_first_column(fields)
-        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
-        want = np.loadtxt(io.BytesIO(raw), delimiter=",", usecols=0, ndmin=1)
+        got, want = _time_column_both_ways(stamps, scopecsv._scientific_first_column, rng)
         mantissa = stamps[0].lower().partition("e")[0]
         places = len(mantissa.partition(".")[2])
         if len({len(x.lstrip("+-")) for x in stamps}) > 1 or any(  # e+100 beside e+99, or
