@@ -15,9 +15,9 @@ parses each); a decode of a WAV changed by less than its runs differ.
 heap's top stays mapped for the next blocks. The freed memory is reused, not added to: in the
 benchmark (``benchmarks/scale.py``) the decode process's peak moved by less than 10 MiB for WAV,
 CSV and HDF5 alike; what a process holds between its peaks stays higher, most in the worker
-process of an hour of WAV (158-160 MiB against 134-152). The
-command line calls it when it starts, as do the worker processes of a local batch; a program
-that uses the library may call it itself. (source: the Linux man-pages project, mallopt(3),
+process of an hour of WAV (158-160 MiB against 134-152). The command line calls it when it
+starts, as do the worker processes of a local batch; a program that uses the library may call
+it itself. (source: the Linux man-pages project, mallopt(3),
 from memory: the mmap threshold starts at 128 kB and rises to the size of a larger block freed,
 up to 32 MB on 64-bit systems, the trim threshold follows at twice it, and setting either one
 ends that adjustment; ``mallopt`` returns 1 on success, 0 on error.)
@@ -31,7 +31,7 @@ import sys
 #: mallopt(3) parameter numbers (glibc's malloc.h)
 M_TRIM_THRESHOLD = -1
 M_MMAP_THRESHOLD = -3
-#: blocks up to this size come from the heap (glibc's upper limit on 64-bit systems)
+#: blocks up to this size come from the heap (above the 4 MB pieces the CSV spool is read in)
 MMAP_THRESHOLD = 8 * 1024 * 1024
 #: free memory at the top of the heap kept mapped, up to this much
 TRIM_THRESHOLD = 32 * 1024 * 1024
@@ -41,11 +41,8 @@ _done: bool | None = None
 
 def keep_freed_memory() -> bool:
     """Set the allocator's thresholds (see the module's text) once; whether they are set
-    (False where the C library is not glibc, or refuses them). Calling it again does nothing.
-
-    >>> keep_freed_memory() == keep_freed_memory()
-    True
-    """
+    (False where the C library is not glibc, or refuses them). Calling it again does nothing
+    (``tests/test_heap.py`` measures what it does)."""
     global _done
     if _done is None:
         _done = _set_thresholds()

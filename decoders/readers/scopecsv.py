@@ -833,25 +833,36 @@ def _plain_first_column(f: _Fields) -> np.ndarray | None:
     dot = head.find(b".")
     if head.count(b".") > 1:
         return None
-    ints = np.zeros(len(starts), dtype=np.int64)
-    digits = 0
-    for c in range(w):
-        col = b[starts + c]
-        if (c == 0 and sign) or c == dot:
-            if not np.all(col == head[c]):
-                return None
-            continue
-        col -= np.uint8(ord("0"))  # wraps below '0': anything not a digit is over 9
+    end_whole = dot if dot >= 0 else w
+    places = w - 1 - dot if dot >= 0 else 0
+    if not 1 <= end_whole - sign + places <= PLAIN_DIGITS:
+        return None
+    for c in (0,) * sign + (dot,) * (dot >= 0):  # the sign and the point, where every row has
+        if not np.all(b[starts + c] == head[c]):  # the first row's
+            return None
+    whole = _digit_run(b, starts, sign, end_whole - sign)
+    after = _digit_run(b, starts, end_whole + 1, places)
+    if whole is None or after is None:
+        return None
+    values = (whole * 10**places + after).astype(np.float64) / float(10**places)
+    return -values if sign else values
+
+
+def _digit_run(b: np.ndarray, first: np.ndarray, offset: int, count: int) -> np.ndarray | None:
+    """The integer that the ``count`` bytes from ``offset`` after each of ``first`` make as
+    decimal digits (int64), or None when one of them is not a digit.
+
+    >>> _digit_run(np.frombuffer(b"x12y07", np.uint8), np.array([0, 3]), 1, 2).tolist()
+    [12, 7]
+    """
+    out = np.zeros(len(first), dtype=np.int64)
+    for c in range(offset, offset + count):
+        col = b[first + c] - np.uint8(ord("0"))  # wraps below '0': anything not a digit is > 9
         if np.any(col > 9):
             return None
-        ints *= 10
-        ints += col
-        digits += 1
-    if not 1 <= digits <= PLAIN_DIGITS:
-        return None
-    places = w - 1 - dot if dot >= 0 else 0
-    values = ints.astype(np.float64) / float(10**places)
-    return -values if sign else values
+        out *= 10
+        out += col
+    return out
 
 
 #: the powers of ten a double holds exactly: 10**22 is the last (5**22 < 2**53)
@@ -894,27 +905,14 @@ def _scientific_first_column(f: _Fields) -> np.ndarray | None:
     if not np.all(signed | (width == body)):
         return None
     first = ends - body  # where each field's body starts
-    zero = np.uint8(ord("0"))
-
-    def digits(offset: int, count: int) -> np.ndarray | None:
-        """The integer that ``count`` digits from ``offset`` in each body make."""
-        out = np.zeros(len(first), dtype=np.int64)
-        for c in range(offset, offset + count):
-            col = b[first + c] - zero  # wraps below '0': anything not a digit is over 9
-            if np.any(col > 9):
-                return None
-            out *= 10
-            out += col
-        return out
-
-    mantissa = digits(0, len(whole))
+    mantissa = _digit_run(b, first, 0, len(whole))
     if mantissa is None:
         return None
     at = len(whole)
     if point and not np.all(b[first + at] == ord(".")):
         return None
     at += len(point)
-    after = digits(at, len(frac))
+    after = _digit_run(b, first, at, len(frac))
     if after is None:
         return None
     mantissa = mantissa * 10 ** len(frac) + after
@@ -930,7 +928,7 @@ def _scientific_first_column(f: _Fields) -> np.ndarray | None:
         if not np.all(exp_negative | (s == ord("+"))):
             return None
         at += 1
-    power = digits(at, len(exp))
+    power = _digit_run(b, first, at, len(exp))
     if power is None:
         return None
     k = np.where(exp_negative, -power, power) - len(frac)
