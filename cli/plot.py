@@ -41,6 +41,7 @@ from toothcomb.decoders.errors import CaptureError, UsageError
 from toothcomb.decoders.model import CaptureInfo
 from toothcomb.decoders.readers.memory import ArraySource, read_span
 from toothcomb.decoders.result import CamEdge, CamResult, DecodeResult
+from toothcomb.decoders.savgol import savgol_filter
 
 from . import style
 from .output import write_atomic
@@ -418,8 +419,6 @@ def jitter_residuals(edge: CamEdge) -> np.ndarray | None:
     >>> np.round(jitter_residuals(e), 3).tolist()
     [-0.05, 0.05, -0.05, 0.05]
     """
-    from scipy.signal import savgol_filter
-
     if len(edge.events) < 3:
         return None
     a = np.asarray(edge.events, dtype=float).reshape(-1, 2)[:, 1]

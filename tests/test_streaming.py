@@ -459,7 +459,7 @@ def test_vr_a_wrong_guess_of_quiet_half_waves_changes_nothing(monkeypatch):
 def test_vr_short_recursions_step_by_step_are_lfilters():
     """A short run of a running average is computed step by step in Python; it must be what
     scipy.signal.lfilter gives (the recursion y = b x + k y), to the last bit."""
-    if not vr_mod._PLAIN:
+    if not vr_mod._plain():
         pytest.skip("this scipy fuses multiply and add: lfilter is used for every run")
     rng = np.random.default_rng(8)
     for rec in (vr_mod._ENVELOPE, vr_mod._SLOW, vr_mod._WIDTH):

@@ -17,9 +17,9 @@ sigma rather than the smaller residual a local fit leaves.
 from __future__ import annotations
 
 import numpy as np
-from scipy.signal import savgol_coeffs, savgol_filter
 
 from ..result import JitterStats
+from ..savgol import savgol_coeffs, savgol_filter
 from ..wheels.base import ToothTrack
 from .timeline import local_cubic
 

@@ -14,7 +14,6 @@ from __future__ import annotations
 from typing import Any, NamedTuple, Protocol
 
 import numpy as np
-from scipy.ndimage import median_filter
 
 from ..model import ChannelLevels, Edges
 
@@ -258,7 +257,9 @@ def despike(x: np.ndarray, size: int) -> np.ndarray:
     if size in (3, 5) and not (x.dtype.kind == "f" and np.isnan(x).any()):
         out = np.empty_like(x)
         _median_network(x, size, out[half : len(x) - half])
-    else:
+    else:  # imported here: scipy.ndimage costs 0.2 s to import, and few decodes come here
+        from scipy.ndimage import median_filter
+
         out = median_filter(x, size=size, mode="nearest")
     out[:half] = x[:half]
     out[len(x) - half :] = x[len(x) - half :]

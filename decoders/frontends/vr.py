@@ -18,12 +18,12 @@ on how the leads are wired and is worked out later from the gap signature of the
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from typing import Any
 
 import numpy as np
-from scipy.signal import lfilter
 
 from ..model import ChannelLevels, Edges
 from .base import (
@@ -584,7 +584,7 @@ def _compare(x: np.ndarray, above: tuple[str, float]) -> np.ndarray:
 
 def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     """The recursion ``rec`` over ``x`` from the value ``y0``: y[0], y[1], ..."""
-    if len(x) <= RUN_BY_STEPS and _PLAIN:
+    if len(x) <= RUN_BY_STEPS and _plain():
         return _steps_of(rec, y0, x)
     return _lfilter_run(rec, y0, x)
 
@@ -629,6 +629,8 @@ def _envelope_through(
 
 
 def _lfilter_run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
+    from scipy.signal import lfilter  # see _plain
+
     b, k = rec
     y, _ = lfilter([b], [1.0, -k], x, zi=[k * y0])
     return y
@@ -636,7 +638,7 @@ def _lfilter_run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarr
 
 def _steps_of(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     """The recursion ``rec`` step by step, as :func:`_follow` takes each step (the same
-    numbers as ``lfilter`` when :data:`_PLAIN`): a short run costs less than calling it."""
+    numbers as ``lfilter`` when :func:`_plain`): a short run costs less than calling it."""
     b, k = rec
     out = []
     y = y0
@@ -663,7 +665,14 @@ def _lfilter_is_plain() -> bool:
 
 #: runs of at most this many half-waves are computed step by step (see :func:`_run`)
 RUN_BY_STEPS = 96
-_PLAIN = _lfilter_is_plain()
+
+
+@functools.cache
+def _plain() -> bool:
+    """:func:`_lfilter_is_plain`, found out once, when a VR front end first needs it (not on
+    import: scipy.signal costs 0.7 s to import, which a decode without a VR channel need not
+    pay)"""
+    return _lfilter_is_plain()
 
 
 def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
@@ -673,7 +682,7 @@ def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
     >>> _follow(_SLOW, 1.0, 3.0)
     1.1
     """
-    if _PLAIN:
+    if _plain():
         return rec[0] * x + rec[1] * y0
     return float(_lfilter_run(rec, y0, np.array([x]))[0])
 

@@ -31,6 +31,7 @@ import numpy as np
 from ..errors import UsageError
 from ..model import Edges
 from ..result import Finding
+from ..savgol import savgol_filter
 from .base import ToothTrack
 
 _NOTATION = re.compile(r"^\s*(\d+)\s*-\s*(\d+)\s*$")
@@ -284,11 +285,7 @@ def local_pitch(times: np.ndarray, exclude: np.ndarray | None = None, half: int 
     w = min(2 * half + 1, n if n % 2 else n - 1)
     if w < 3:
         return v
-    # imported here: scipy.signal takes a second or two to import, which a command that only
-    # lists the wheels (or prints its help) should not pay
-    from scipy.signal import savgol_filter
-
-    return savgol_filter(v, w, min(2, w - 1), mode="interp")
+    return savgol_filter(v, w, min(2, w - 1))
 
 
 def off_grid(times: np.ndarray) -> np.ndarray:
