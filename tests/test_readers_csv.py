@@ -701,7 +701,7 @@ def test_scientific_time_stamps_are_read_as_numpy_reads_them() -> None:
         step = 10.0 ** int(rng.integers(-9, 2))
         t0 = -step * int(rng.integers(0, 2 * n + 1))  # from before the trigger, often through 0
         stamps = [form(t0 + k * step) for k in range(n)]
-        got, want = _time_column_both_ways(stamps, scopecsv._scientific_first_column, rng)
+        got, want = _time_column_both_ways(stamps, scopecsv._scientific_column, rng)
         mantissa = stamps[0].lower().partition("e")[0]
         places = len(mantissa.partition(".")[2])
         if len({len(x.lstrip("+-")) for x in stamps}) > 1 or any(  # e+100 beside e+99, or
@@ -726,7 +726,23 @@ def test_scientific_time_stamps_are_read_as_numpy_reads_them() -> None:
         "0.001,1,2\n",  # no exponent: the plain reader's
     ]:
         fields = scopecsv._fields(text.encode(), lay)
-        assert fields is None or scopecsv._scientific_first_column(fields) is None, text
+        assert fields is None or scopecsv._scientific_column(fields) is None, text
+    # channels printed so, with as many distinct values as rows: read as the time column is
+    for trial in range(60):
+        form = forms[trial % len(forms)]
+        n = int(rng.integers(1, 600))
+        values = rng.normal(0.0, 10.0 ** rng.integers(-6, 4), (n, 2))
+        text = "".join(f"{k},{form(a)},{form(b)}\n" for k, (a, b) in enumerate(values))
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is not None
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        want = np.loadtxt(io.StringIO(text), delimiter=",", usecols=(1, 2), ndmin=2)
+        got = scopecsv._channel_columns(fields, [1, 2])
+        one = scopecsv._scientific_column(fields, 1)
+        if form(1.0).endswith("e+00") and np.any(np.abs(values) >= 1e100):
+            continue  # three exponent digits beside two: left to numpy's parser
+        assert got is not None and one is not None, trial
+        assert got.tobytes() == want.tobytes() and one.tobytes() == want[:, 0].tobytes(), trial
 
 
 def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) -> None:
@@ -748,6 +764,92 @@ def test_opening_a_long_csv_reports_its_progress(tmp_path: Path, monkeypatch) ->
     write_capture(str(wav), np.zeros((1000, 2)), 48000.0, ["a", "b"])
     with open_capture(wav, progress=lambda d, t: calls.append((d, t))):
         pass  # the audio reader takes no such option, and is not given one
+
+
+def test_channel_values_with_fixed_decimals_are_read_as_numpy_reads_them() -> None:
+    """A channel printed with a fixed number of decimals ("-1.40625", "0.02832", "12345") is read
+    from the ends of its fields, however many distinct values it holds; every value must be the
+    one numpy's own text parser gives, to the last bit (the sign of zero too), and any field
+    laid out otherwise must leave the chunk to another reader."""
+    rng = np.random.default_rng(1964)
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    for trial in range(300):
+        places = int(rng.integers(0, 10))
+        scale = 10.0 ** rng.integers(-3, 6)
+        n = int(rng.integers(1, 600))
+        values = rng.normal(0.0, scale, (n, 2))
+        values[rng.random((n, 2)) < 0.05] = 0.0  # zeros, printed "-0.000" when negative
+        values[rng.random((n, 2)) < 0.05] *= -1.0
+        sign = "+" if trial % 7 == 0 else ""
+        rows = [[f"{v:{sign}.{places}f}" for v in row] for row in values]
+        if any(len(x.lstrip("+-").replace(".", "")) > scopecsv.PLAIN_DIGITS
+               for row in rows for x in row):
+            continue
+        if trial % 5 == 0:  # no digit before the point, as some loggers print
+            rows = [[x.replace("0.", ".", 1) if x.lstrip("+-").startswith("0.") else x
+                     for x in row] for row in rows]
+        text = "".join(f"{k / 1000:.3f},{a},{b}\n" for k, (a, b) in enumerate(rows))
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is not None, trial
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        want = np.loadtxt(io.StringIO(text), delimiter=",", usecols=(1, 2), ndmin=2)
+        for j in (0, 1):
+            got = scopecsv._decimal_column(fields, j + 1)
+            assert got is not None, (trial, rows[0])
+            assert got.tobytes() == want[:, j].tobytes(), (trial, rows[0])
+        both = scopecsv._channel_columns(fields, [1, 2])
+        assert both is not None and both.tobytes() == want.tobytes(), trial
+    for column in [
+        ["0.50", "0.25", "0.5"],  # decimals differ
+        ["0.5", "12"],  # no point where the first field has it
+        ["1.5", "-25"],
+        ["1e-3", "2e-3"],  # an exponent
+        ["0.10", " 0.20"],  # a space
+        ["1-2", "3"],  # a sign inside
+        ["--1", "2"],
+        ["+", "2"],  # no digit
+        ["-.", "2."],
+        ["1.2.3", "4.5.6"],  # two points
+        ["nan", "inf"],
+        ["1234567890.1234567", "1.0000000000000000"],  # 17 digits
+    ]:
+        text = "".join(f"{k},{x},1\n" for k, x in enumerate(column))
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is None or scopecsv._decimal_column(fields, 1) is None, column
+
+
+def test_each_channel_is_read_the_way_that_read_it_last() -> None:
+    """A column read by its distinct texts in one chunk is tried that way first in the next; a
+    column that then holds too many distinct texts, or texts of another layout, is read the
+    other way, and the values stay numpy's."""
+    lay = scopecsv._Layout(",", ".", 3, False, 0, 1)
+    table = scopecsv._KeyTable()
+
+    def chunk(col1: list[str], col2: list[str]) -> tuple[scopecsv._Fields, np.ndarray]:
+        text = "".join(f"{k},{a},{b}\n" for k, (a, b) in enumerate(zip(col1, col2, strict=True)))
+        fields = scopecsv._fields(text.encode(), lay)
+        assert fields is not None
+        # source: numpy.loadtxt (numpy's C text parser, correctly rounded conversion)
+        return fields, np.loadtxt(io.StringIO(text), delimiter=",", usecols=(1, 2), ndmin=2)
+
+    n = scopecsv.MAX_DISTINCT + 10
+    levels = [f"{v:g}" for v in np.arange(-8, 8) / 16]  # decimals differ: distinct texts only
+    fixed = [f"{v:.5f}" for v in np.linspace(-3, 3, n)]  # all distinct, fixed decimals
+    # chunk 1: column 1 by its texts, column 2 by its decimals
+    fields, want = chunk(levels * (n // len(levels)) + levels[: n % len(levels)], fixed)
+    got = scopecsv._channel_columns(fields, [1, 2], table)
+    assert got is not None and got.tobytes() == want.tobytes()
+    assert table.read_by == {1: 2, 2: 0}  # places in scopecsv._COLUMN_READERS
+    # chunk 2: the columns swap kinds, and each is read the other way from now on
+    fields, want = chunk(fixed, levels * (n // len(levels)) + levels[: n % len(levels)])
+    got = scopecsv._channel_columns(fields, [1, 2], table)
+    assert got is not None and got.tobytes() == want.tobytes()
+    assert table.read_by == {1: 0, 2: 2}
+    # a column neither way can read (many distinct texts, decimals differing) leaves the chunk
+    # to numpy's parser
+    odd = [f"{v:g}" for v in np.linspace(-3, 3, n)]
+    fields, _ = chunk(odd, fixed)
+    assert scopecsv._channel_columns(fields, [1, 2], table) is None
 
 
 def test_channel_values_read_by_their_distinct_texts_are_numpy_s() -> None:

@@ -763,6 +763,19 @@ class _Fields:
         w1 = (a1 >> right) | ((a2 << left) << one)
         return w0, w1
 
+    def tails(self, ends: np.ndarray, width: int) -> np.ndarray:
+        """The ``width`` bytes (16 or 32) before each of ``ends``, as the rows of a uint8
+        matrix: a field that ends there has its last byte in the last column (zeros stand
+        before the chunk's first byte)."""
+        m = np.empty((len(ends), width // 8), np.uint64)
+        for j in range(0, width // 8, 2):
+            m[:, j], m[:, j + 1] = self.words_at(np.maximum(ends - (width - 8 * j), 0))
+        out = m.view(np.uint8)
+        for i in np.flatnonzero(ends < width).tolist():  # the chunk's first row or two
+            e = int(ends[i])
+            out[i] = np.frombuffer(bytes(width - e) + self.b[:e].tobytes(), np.uint8)
+        return out
+
     @property
     def rows(self) -> int:
         return len(self.seps) // self.n
@@ -829,6 +842,8 @@ def _plain_first_column(f: _Fields) -> np.ndarray | None:
     if not 1 <= w <= PLAIN_DIGITS + 2 or np.any(f.ends(0) - starts != w):
         return None
     head = bytes(b[:w])
+    if not _is_decimal(head):
+        return None  # at once: the checks below read every row
     sign = 1 if head[:1] == b"-" else 0
     dot = head.find(b".")
     if head.count(b".") > 1:
@@ -846,6 +861,17 @@ def _plain_first_column(f: _Fields) -> np.ndarray | None:
         return None
     values = (whole * 10**places + after).astype(np.float64) / float(10**places)
     return -values if sign else values
+
+
+def _is_decimal(text: bytes) -> bool:
+    """Whether ``text`` is digits with a point or not and a sign or not ("-0.5", "+.5", "12.").
+
+    >>> [_is_decimal(t) for t in (b"-0.5", b"+.5", b"12.", b"1e3", b"-", b".", b"1.2.3")]
+    [True, True, True, False, False, False, False]
+    """
+    digits = text[1:] if text[:1] in (b"-", b"+") else text
+    digits = digits.replace(b".", b"", 1)
+    return digits.isdigit()  # bytes: ASCII digits only
 
 
 def _digit_run(b: np.ndarray, first: np.ndarray, offset: int, count: int) -> np.ndarray | None:
@@ -867,15 +893,16 @@ def _digit_run(b: np.ndarray, first: np.ndarray, offset: int, count: int) -> np.
 
 #: the powers of ten a double holds exactly: 10**22 is the last (5**22 < 2**53)
 _EXACT_TENS = np.array([10.0**k for k in range(23)])
-#: a number in scientific notation, as :func:`_scientific_first_column` takes it apart
+#: a number in scientific notation, as :func:`_scientific_column` takes it apart
 _SCIENTIFIC = re.compile(r"[+-]?(\d*)(\.?)(\d*)[eE]([+-]?)(\d{1,3})")
 
 
-def _scientific_first_column(f: _Fields) -> np.ndarray | None:
-    """The first column of a plain chunk printed in scientific notation at a fixed precision,
-    as many scopes print their time column ("-2.500000e-03", "1.2500E+00"): every field laid
-    out as the first one counted from its end (the mantissa's digits and point, the exponent
-    mark, the exponent's sign and digits), with or without a sign in front. None otherwise.
+def _scientific_column(f: _Fields, col: int = 0) -> np.ndarray | None:
+    """Column ``col`` of a plain chunk printed in scientific notation at a fixed precision, as
+    many scopes print their time column and some their channels ("-2.500000e-03",
+    "1.2500E+00"): every field laid out as the first one counted from its end (the mantissa's
+    digits and point, the exponent mark, the exponent's sign and digits), with or without a
+    sign in front. None otherwise.
 
     The values are those of a correctly rounded conversion, as numpy's own parser gives: the
     mantissa's digits (at most 15) form an integer below 2**53, exact as a float; with k the
@@ -885,13 +912,16 @@ def _scientific_first_column(f: _Fields) -> np.ndarray | None:
     larger |k| is left to numpy's parser.
 
     >>> lay = _Layout(",", ".", 2, False, 0, 1)
-    >>> _scientific_first_column(_fields(b"-2.5e-03,5\\n2.5e-03,6\\n1.0E+01,7\\n", lay)).tolist()
+    >>> _scientific_column(_fields(b"-2.5e-03,5\\n2.5e-03,6\\n1.0E+01,7\\n", lay)).tolist()
     [-0.0025, 0.0025, 10.0]
-    >>> _scientific_first_column(_fields(b"0.001,5\\n", lay)) is None
+    >>> _scientific_column(_fields(b"0.001,5.0e-1\\n", lay)) is None
     True
+    >>> _scientific_column(_fields(b"0.001,5.0e-01\\n0.002,-1.5E+00\\n", lay), 1).tolist()
+    [0.5, -1.5]
     """
     b = f.b
-    head = bytes(b[: int(f.seps[0])]).decode("latin-1")
+    starts, ends = f.starts(col), f.ends(col)
+    head = bytes(b[starts[0] : ends[0]]).decode("latin-1")
     m = _SCIENTIFIC.fullmatch(head)
     if m is None or not (m.group(1) or m.group(3)):
         return None
@@ -899,49 +929,108 @@ def _scientific_first_column(f: _Fields) -> np.ndarray | None:
     if len(whole) + len(frac) > PLAIN_DIGITS:
         return None
     body = len(head) - (1 if head[0] in "+-" else 0)  # the part every field has, from its end
-    starts, ends = f.starts(0), f.ends(0)
     width = ends - starts
     signed = width == body + 1
     if not np.all(signed | (width == body)):
         return None
-    first = ends - body  # where each field's body starts
-    mantissa = _digit_run(b, first, 0, len(whole))
-    if mantissa is None:
+    # the last bytes of every field, its last in the last column: the body's characters and
+    # the sign before it sit in the same columns in every row
+    t = f.tails(ends, 16 if body < 16 else 32)
+    at = t.shape[1] - body  # the body's first column
+    whole_cols = np.arange(at, at + len(whole))
+    at += len(whole) + len(point)
+    mantissa = _digit_columns(t, np.r_[whole_cols, at : at + len(frac)])
+    if mantissa is None or (point and not np.all(t[:, at - 1] == ord("."))):
         return None
-    at = len(whole)
-    if point and not np.all(b[first + at] == ord(".")):
-        return None
-    at += len(point)
-    after = _digit_run(b, first, at, len(frac))
-    if after is None:
-        return None
-    mantissa = mantissa * 10 ** len(frac) + after
     at += len(frac)
-    mark = b[first + at]
-    if not np.all((mark == ord("e")) | (mark == ord("E"))):
+    if not np.all(t[:, at] | np.uint8(0x20) == ord("e")):  # e or E
         return None
     at += 1
-    exp_negative = np.zeros(len(first), dtype=bool)
+    exp_negative = np.zeros(len(ends), dtype=bool)
     if exp_sign:
-        s = b[first + at]
-        exp_negative = s == ord("-")
-        if not np.all(exp_negative | (s == ord("+"))):
+        exp_negative = t[:, at] == ord("-")
+        if not np.all(exp_negative | (t[:, at] == ord("+"))):
             return None
         at += 1
-    power = _digit_run(b, first, at, len(exp))
+    power = _digit_columns(t, np.arange(at, at + len(exp)))
     if power is None:
         return None
     k = np.where(exp_negative, -power, power) - len(frac)
     if np.any(np.abs(k) > 22):
         return None
-    tens = _EXACT_TENS[np.abs(k)]
+    tens = _EXACT_TENS[np.abs(k).astype(np.intp)]
     values = np.where(k >= 0, mantissa * tens, mantissa / tens)
-    sign = b[starts[signed]]
-    if not np.all((sign == ord("-")) | (sign == ord("+"))):
+    sign = t[:, t.shape[1] - body - 1]
+    negative = signed & (sign == ord("-"))
+    if not np.all(negative | ~signed | (sign == ord("+"))):
         return None
-    negative = np.zeros(len(first), dtype=bool)
-    negative[signed] = sign == ord("-")
     return np.where(negative, -values, values)
+
+
+def _digit_columns(t: np.ndarray, cols: np.ndarray) -> np.ndarray | None:
+    """The integer (as float64, exact below 2**53) that columns ``cols`` of the byte matrix
+    ``t`` make as decimal digits in each row, or None when one of them is not a digit.
+
+    >>> _digit_columns(np.frombuffer(b"x12y07", np.uint8).reshape(2, 3), np.array([1, 2]))
+    array([12.,  7.])
+    """
+    digits = t[:, cols] - np.uint8(ord("0"))  # wraps below '0': anything not a digit is > 9
+    if len(cols) and digits.max() > 9:
+        return None
+    # every product and partial sum is an integer below 2**53: exact in any order
+    return digits.astype(np.float64) @ 10.0 ** np.arange(len(cols) - 1, -1, -1)
+
+
+def _decimal_column(f: _Fields, col: int) -> np.ndarray | None:
+    """Column ``col`` of a plain chunk when every field is a decimal number with as many digits
+    after the point as the first field (none, and no point, when it has none), any number of
+    digits before it and a sign or not: what a scope or a logger prints with a fixed number of
+    decimals ("0.02832", "-1.40625", "12345"). At most :data:`PLAIN_DIGITS` digits. None
+    otherwise.
+
+    The fields are read from their ends: the digits after the point and the point sit at the
+    same distance from every field's end, and the digits before it are taken one place at a
+    time, as far as the longest. The values are correctly rounded, as numpy's own parser gives
+    them (the fast path of Clinger, 1990, as in :func:`_plain_first_column`).
+
+    >>> lay = _Layout(",", ".", 3, False, 0, 1)
+    >>> f = _fields(b"0.1,-0.50,7\\n0.2,12.25,-12\\n0.3,+.75,0\\n", lay)
+    >>> _decimal_column(f, 1).tolist(), _decimal_column(f, 2).tolist()
+    ([-0.5, 12.25, 0.75], [7.0, -12.0, 0.0])
+    >>> _decimal_column(_fields(b"0.1,0.5\\n0.2,0.25\\n", _Layout(",", ".", 2, False, 0, 1)), 1)
+    """
+    b = f.b
+    starts, ends = f.starts(col), f.ends(col)
+    head = bytes(b[starts[0] : ends[0]])
+    if not _is_decimal(head):
+        return None  # at once: the checks below read every row
+    dot = head.rfind(b".")
+    places = len(head) - 1 - dot if dot >= 0 else 0
+    point = 1 if dot >= 0 else 0
+    if places > PLAIN_DIGITS:
+        return None
+    first = b[starts]
+    signed = (first == ord("-")) | (first == ord("+"))
+    # the digits before the point: the field less its sign, point and digits after it
+    lead = ends - starts - signed - (places + point)
+    if lead.min() < 0 or lead.max() + places > PLAIN_DIGITS or np.any(lead + places == 0):
+        return None
+    if point and not np.all(b[ends - (places + 1)] == ord(".")):
+        return None
+    frac = _digit_run(b, ends - places, 0, places)
+    if frac is None:
+        return None
+    whole = np.zeros(len(ends), dtype=np.int64)
+    at = ends - (places + point)  # just after each field's last digit before the point
+    for k in range(int(lead.max())):
+        at -= 1
+        digit = b[at] - np.uint8(ord("0"))  # wraps below '0': anything not a digit is > 9
+        here = lead > k
+        if np.any(digit[here] > 9):
+            return None
+        whole += np.where(here, digit, 0).astype(np.int64) * 10**k
+    values = (whole * 10**places + frac).astype(np.float64) / _EXACT_TENS[places]
+    return np.where(first == ord("-"), -values, values)
 
 
 #: widest field :func:`_few_values` reads (its characters make a 128-bit key)
@@ -989,7 +1078,10 @@ class _KeyTable:
     along it, so most chunks find every field's value here and convert nothing. Each bucket
     (hashed as in the first round of :func:`_key_index`) holds at most one key and its value,
     the first one stored there; an empty bucket holds the key 0, which no field has (a field is
-    never empty)."""
+    never empty).
+
+    Which reader read each column last (``read_by``: its place in :data:`_COLUMN_READERS`), for
+    :func:`_channel_columns` to try first."""
 
     def __init__(self) -> None:
         size = 1 << HASH_BITS
@@ -1000,6 +1092,7 @@ class _KeyTable:
         self.known0 = np.zeros(size, np.uint64)  # the values met: key, value
         self.known1 = np.zeros(size, np.uint64)
         self.value = np.zeros(size)
+        self.read_by: dict[int, int] = {}
 
     def look_up(self, k0: np.ndarray, k1: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(each key's value where known, whether known)."""
@@ -1146,19 +1239,61 @@ def _read_plain(
     chunk: _Chunk, f: _Fields, layout: _Layout, shown: str, table: _KeyTable | None = None
 ) -> tuple[np.ndarray, np.ndarray] | None:
     """(the time column, the channel columns) of a plain chunk, the time column read by
-    :func:`_plain_first_column` or :func:`_scientific_first_column` and channels with few
-    distinct values by :func:`_few_values`
-    (numpy's parser reads the other channels); None when the time column is not plain."""
+    :func:`_plain_first_column` or :func:`_scientific_column` and the channels by
+    :func:`_channel_columns` (numpy's parser reads them when one cannot be read so); None when
+    the time column is not plain."""
     t = _plain_first_column(f)
     if t is None:
-        t = _scientific_first_column(f)
+        t = _scientific_column(f)
     if t is None:
         return None
     cols = layout.channel_cols
-    values = _few_values(f, cols, table)
+    values = _channel_columns(f, cols, table)
     if values is None:
         values = _parse(chunk, layout, shown, usecols=cols, plain=True)
     return (t, values) if len(values) == len(t) else None
+
+
+def _channel_columns(
+    f: _Fields, cols: Sequence[int], table: _KeyTable | None = None
+) -> np.ndarray | None:
+    """Columns ``cols`` of a plain chunk, each read by :func:`_decimal_column` (fixed decimals),
+    :func:`_scientific_column` (scientific notation at a fixed precision) or
+    :func:`_few_values` (few distinct texts); None when one column can be read by none of them.
+
+    >>> lay = _Layout(",", ".", 3, False, 0, 1)
+    >>> f = _fields(b"0.1,-0.51,0.5\\n0.2,0.25,1E1\\n0.3,-0.50,0\\n", lay)
+    >>> _channel_columns(f, [1, 2]).tolist()
+    [[-0.51, 0.5], [0.25, 10.0], [-0.5, 0.0]]
+    """
+    t = table if table is not None else _KeyTable()
+    out = np.empty((f.rows, len(cols)))
+    for j, c in enumerate(cols):
+        # the reader that read this column last is tried first: a column keeps its kind
+        # along a capture, and a reader that fails costs a share of a read
+        last = t.read_by.get(c, 0)
+        for k in (last, *(k for k in range(len(_COLUMN_READERS)) if k != last)):
+            column = _COLUMN_READERS[k](f, c, t)
+            if column is not None:
+                t.read_by[c] = k
+                out[:, j] = column
+                break
+        else:
+            return None
+    return out
+
+
+def _few_column(f: _Fields, col: int, table: _KeyTable) -> np.ndarray | None:
+    few = _few_values(f, [col], table)
+    return None if few is None else few[:, 0]
+
+
+#: the readers of a channel column, in the order tried on a column met for the first time
+_COLUMN_READERS: tuple[Callable[[_Fields, int, _KeyTable], np.ndarray | None], ...] = (
+    lambda f, col, _: _decimal_column(f, col),
+    lambda f, col, _: _scientific_column(f, col),
+    _few_column,
+)
 
 
 def _parse_columns(
