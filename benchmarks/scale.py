@@ -29,7 +29,10 @@ What it does:
    installed, once by pyarrow's CSV reader, each ``--repeats`` times alternating with
    ``numpy.loadtxt`` on the file's first ``--loadtxt-rows`` rows (rows per second, the fastest
    of each), the spooled values
-   read back, and the decode's time and peak memory;
+   read back, and the decode's time and peak memory; the same for a CSV of about
+   ``--fixed-csv-mb`` megabytes whose channels are printed at five fixed decimals, as a data
+   logger or a high-resolution export prints them (a float capture: nearly every value
+   distinct);
 4. with ``--profile``: decodes each WAV once more under cProfile and prints the share of each
    stage (levels, first seconds, reading, front ends, tracker and cam locator, result) with
    what it comes to in seconds and in multiples of the read;
@@ -359,6 +362,59 @@ def csv_seconds(folder: Path, megabytes: float, rate: float) -> float:
     return max(1.0, round(megabytes * 1e6 / per_s))
 
 
+def make_fixed_csv(path: Path, sc, decimals: int = 5) -> float:
+    """Write ``sc`` to ``path`` as a CSV whose channels are printed at ``decimals`` fixed
+    decimals, as a data logger or a high-resolution scope export prints them (nearly every value
+    distinct), block by block (skipped when it exists); seconds it took."""
+    import numpy as np
+    from toothcomb.decoders.simulate.render import iter_blocks
+
+    if path.exists():
+        return 0.0
+    t0 = time.perf_counter()
+    fs = sc.sample_rate
+    names = [c.label for c in sc.resolved_channels()]
+    tmp = path.with_suffix(".part")
+    with open(tmp, "w") as f:
+        f.write("time_s," + ",".join(names) + "\n")
+        for b in iter_blocks(sc, 1 << 18):
+            t = (b.start + np.arange(len(b.data))) / fs
+            np.savetxt(f, np.column_stack([t, b.data]), delimiter=",",
+                       fmt=["%.7f"] + [f"%.{decimals}f"] * b.data.shape[1])
+    tmp.replace(path)
+    return time.perf_counter() - t0
+
+
+def csv_part(path: Path, label: str, made: float, a: argparse.Namespace) -> None:
+    """Time the parse of the CSV ``path`` against numpy.loadtxt, both ways, and decode it."""
+    size = path.stat().st_size / 1e6
+    print(f"\n{label} ({size:.0f} MB, made in {made:.0f} s)")
+    ways = ["numpy", "arrow"] if _has_pyarrow() else ["numpy"]
+    for way in ways:
+        p = run(CSV_PARSE, str(path), str(a.block_size), str(a.loadtxt_rows), way,
+                str(a.repeats))
+        ours = p["rows"] / p["open_s"]
+        theirs = p["loadtxt_rows"] / p["loadtxt_s"]
+        how = ("by pyarrow's CSV reader (the fast-csv extra)" if p.get("arrow")
+               else "without pyarrow: by the vectorised readers or numpy's parser, in "
+               "512 kB chunks")
+        spread = ", ".join(f"{t:.1f}" for t in p["opens"])
+        print(f"  parse {how} (open: every row parsed once, checked, the clock fitted, "
+              f"the values spooled), best of {a.repeats} ({spread} s): "
+              f"{p['open_s']:.1f} s, {p['rows']} rows, {ours / 1e6:.2f} M rows/s, "
+              f"{size / p['open_s']:.0f} MB/s")
+        spread = ", ".join(f"{t:.2f}" for t in p["loads"])
+        print(f"    numpy.loadtxt on its first {p['loadtxt_rows']} rows, after each: best "
+              f"{p['loadtxt_s']:.2f} s ({spread}), {theirs / 1e6:.2f} M rows/s; "
+              f"ours/loadtxt {ours / theirs:.2f}")
+        print(f"    the parsed values read back in blocks (the decode's passes): "
+              f"{p['blocks_s']:.1f} s, {p['rows'] / p['blocks_s'] / 1e6:.0f} M rows/s",
+              flush=True)
+        r = run(DECODE_ONLY, str(path), str(a.block_size), way)
+        print(f"    decode: {r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
+              f"{r['references']} reference events", flush=True)
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     ap.add_argument("--minutes", type=float, nargs="+", default=[1.0, 10.0, 60.0],
@@ -371,6 +427,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--one-shot-mb", type=float, default=1200.0,
                     help="also time a one-piece read when the float32 array is this small")
     ap.add_argument("--csv-mb", type=float, default=1000.0, help="size of the scope CSV (MB)")
+    ap.add_argument("--fixed-csv-mb", type=float, default=300.0,
+                    help="about the size of the CSV at fixed decimals (MB; 0: none)")
     ap.add_argument("--loadtxt-rows", type=int, default=3_000_000,
                     help="rows numpy.loadtxt parses for the comparison")
     ap.add_argument("--only", nargs="+", default=["wav", "csv", "hdf5"],
@@ -439,33 +497,13 @@ def main(argv: list[str] | None = None) -> int:
             seconds = csv_seconds(folder, a.csv_mb, rate)
             path = folder / f"scope-vr-{seconds:g}s.csv"
             made = make(path, scenario("vr", seconds, rate, "scope"))
-            size = path.stat().st_size / 1e6
-            print(f"\nscope CSV, {seconds:g} s at {rate:g} Hz ({size:.0f} MB, "
-                  f"made in {made:.0f} s)")
-            ways = ["numpy", "arrow"] if _has_pyarrow() else ["numpy"]
-            for way in ways:
-                p = run(CSV_PARSE, str(path), str(a.block_size), str(a.loadtxt_rows), way,
-                        str(a.repeats))
-                ours = p["rows"] / p["open_s"]
-                theirs = p["loadtxt_rows"] / p["loadtxt_s"]
-                how = ("by pyarrow's CSV reader (the fast-csv extra)" if p.get("arrow")
-                       else "without pyarrow: by the vectorised readers or numpy's parser, in "
-                       "512 kB chunks")
-                spread = ", ".join(f"{t:.1f}" for t in p["opens"])
-                print(f"  parse {how} (open: every row parsed once, checked, the clock fitted, "
-                      f"the values spooled), best of {a.repeats} ({spread} s): "
-                      f"{p['open_s']:.1f} s, {p['rows']} rows, {ours / 1e6:.2f} M rows/s, "
-                      f"{size / p['open_s']:.0f} MB/s")
-                spread = ", ".join(f"{t:.2f}" for t in p["loads"])
-                print(f"    numpy.loadtxt on its first {p['loadtxt_rows']} rows, after each: best "
-                      f"{p['loadtxt_s']:.2f} s ({spread}), {theirs / 1e6:.2f} M rows/s; "
-                      f"ours/loadtxt {ours / theirs:.2f}")
-                print(f"    the parsed values read back in blocks (the decode's passes): "
-                      f"{p['blocks_s']:.1f} s, {p['rows'] / p['blocks_s'] / 1e6:.0f} M rows/s",
-                      flush=True)
-                r = run(DECODE_ONLY, str(path), str(a.block_size), way)
-                print(f"    decode: {r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
-                      f"{r['references']} reference events", flush=True)
+            csv_part(path, f"scope CSV (8-bit), {seconds:g} s at {rate:g} Hz", made, a)
+            if a.fixed_csv_mb > 0:
+                seconds = max(1.0, round(seconds * a.fixed_csv_mb / a.csv_mb))
+                path = folder / f"logger-vr-{seconds:g}s.csv"
+                made = make_fixed_csv(path, scenario("vr", seconds, rate, "float"))
+                csv_part(path, f"CSV at fixed decimals (values all but unique), {seconds:g} s at "
+                         f"{rate:g} Hz", made, a)
     finally:
         if not a.keep:
             shutil.rmtree(folder, ignore_errors=True)
