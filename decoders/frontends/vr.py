@@ -108,6 +108,9 @@ class VrFrontEnd(SampleFeed):
         self._p_after: list[np.ndarray] = []
         self._p_peak: list[np.ndarray] = []
         self._pending = 0
+        # scipy.signal is imported here, where the decode builds its front ends, rather than
+        # at the first run: a worker process forked later then finds it imported
+        _plain()
 
     @classmethod
     def calibrate(
