@@ -1,5 +1,5 @@
 """Savitzky-Golay smoothing in numpy (toothcomb.decoders.savgol) against scipy.signal, and the
-import cost it saves: a decode of Hall sensors loads no scipy at all."""
+import cost it saves: a decode of Hall sensors, or a short one of VR sensors, loads no scipy."""
 
 from __future__ import annotations
 
@@ -89,6 +89,7 @@ def test_a_window_longer_than_the_series_is_refused() -> None:
 #: in a fresh process: decode a capture and list the scipy modules that got imported
 IMPORTS = r"""
 import json, sys
+exec(sys.argv[2])
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 r = decode_capture(sys.argv[1], DecodeOptions(worker_process=False))
@@ -97,9 +98,10 @@ print(json.dumps({"refs": len(r.crank.reference_times_s),
 """
 
 
-def _decode_imports(path: Path) -> dict:
-    out = subprocess.run([sys.executable, "-c", IMPORTS, str(path)], capture_output=True,
-                         text=True, check=True)
+def _decode_imports(path: Path, before: str = "") -> dict:
+    """What a decode of ``path`` in a fresh process imports (``before``: code run first)."""
+    out = subprocess.run([sys.executable, "-c", IMPORTS, str(path), before],
+                         capture_output=True, text=True, check=True)
     return json.loads(out.stdout)
 
 
@@ -113,11 +115,16 @@ def test_a_hall_decode_loads_no_scipy(tmp_path: Path) -> None:
     assert got["scipy"] == []
 
 
-def test_a_vr_decode_loads_scipy_signal_for_its_running_averages(tmp_path: Path) -> None:
-    """The VR front end's running averages run through scipy.signal.lfilter: it is imported
-    when a VR channel is decoded (and only then)."""
+def test_a_short_vr_decode_loads_no_scipy_and_a_long_one_does(tmp_path: Path) -> None:
+    """The VR front end's running averages are stepped in Python on a short capture (importing
+    scipy.signal for lfilter would cost more); a long one imports it before the pass (here
+    "long" is made 1 s, so that a short capture stands in for it)."""
     path = tmp_path / "vr.flac"
     simulate(preset("idle-60-2-vr-soundcard", duration_s=1.5)).write(path)
     got = _decode_imports(path)
+    assert got["refs"] >= 15
+    assert got["scipy"] == []
+    got = _decode_imports(path, "import toothcomb.decoders.frontends.vr as v; "
+                                "v.LONG_CAPTURE_S = 1.0")
     assert got["refs"] >= 15
     assert "scipy.signal" in got["scipy"]

@@ -456,19 +456,41 @@ def test_vr_a_wrong_guess_of_quiet_half_waves_changes_nothing(monkeypatch):
         assert np.array_equal(e.strength, slow.strength)
 
 
-def test_vr_short_recursions_step_by_step_are_lfilters():
-    """A short run of a running average is computed step by step in Python; it must be what
-    scipy.signal.lfilter gives (the recursion y = b x + k y), to the last bit."""
+def test_vr_recursions_step_by_step_are_lfilters():
+    """A run of a running average is computed step by step in Python, or by lfilter once
+    scipy.signal is imported; the steps must be what scipy.signal.lfilter gives (the recursion
+    y = b x + k y), to the last bit, on short runs and long ones."""
     if not vr_mod._plain():
-        pytest.skip("this scipy fuses multiply and add: lfilter is used for every run")
+        pytest.skip("this scipy fuses multiply and add: the runs are stepped in Python only")
     rng = np.random.default_rng(8)
     for rec in (vr_mod._ENVELOPE, vr_mod._SLOW, vr_mod._WIDTH):
-        for n in (0, 1, 2, 17, vr_mod.RUN_BY_STEPS):
+        for n in (0, 1, 2, 17, vr_mod.RUN_BY_STEPS, vr_mod.RUN_BY_STEPS + 1, 5000):
             x = rng.random(n) * 10.0 ** rng.integers(-6, 3, n)
             b, k = rec
             # source: scipy documentation, scipy.signal.lfilter (direct form II transposed)
             want = signal.lfilter([b], [1.0, -k], x, zi=[k * 0.37])[0]
+            assert np.array_equal(vr_mod._steps_of(rec, 0.37, x), want)
             assert np.array_equal(vr_mod._run(rec, 0.37, x), want)
+
+
+def test_vr_edges_are_the_same_with_or_without_lfilter(monkeypatch):
+    """Long runs go to lfilter only when it gives Python's numbers: a front end whose runs are
+    all stepped in Python finds the same edges to the last bit."""
+    x = _vr_signal()
+    lv = ChannelLevels("ch0", len(x), -2, 2, 0, 0.7, (-1.2, -1, -0.9, -0.5, 0, 0.5, 0.9, 1, 1.2),
+                       0.003, 0.0)
+    lfiltered: list[int] = []
+    real = vr_mod._lfilter_run
+    monkeypatch.setattr(vr_mod, "_lfilter_run", lambda *a: lfiltered.append(1) or real(*a))
+    with_lfilter = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    if vr_mod._plain():
+        assert len(lfiltered) > 10  # scipy.signal is imported here: the long runs took it
+    monkeypatch.setattr(vr_mod, "_plain", lambda: False)  # as if lfilter were not plain
+    lfiltered.clear()
+    stepped = _edges_of(vr_mod.VrFrontEnd(100_000.0, lv), x, 8191)
+    assert lfiltered == []
+    assert len(stepped) > 1000
+    _assert_same_edges(with_lfilter, stepped)
 
 
 def _extensible_wav(path: Path, codes: np.ndarray, rate: int) -> None:

@@ -19,7 +19,9 @@ from ..model import ChannelLevels, Edges
 
 
 class FrontEnd(Protocol):
-    """The contract of a ``toothcomb.frontends`` plugin."""
+    """The contract of a ``toothcomb.frontends`` plugin. A front end may also have a method
+    ``expect(n_samples)``, which the decode calls with the capture's length before the first
+    block (the VR front end decides there how to compute its running averages)."""
 
     name: str
 

@@ -21,6 +21,7 @@ from __future__ import annotations
 import functools
 import itertools
 import math
+import sys
 from typing import Any
 
 import numpy as np
@@ -108,9 +109,13 @@ class VrFrontEnd(SampleFeed):
         self._p_after: list[np.ndarray] = []
         self._p_peak: list[np.ndarray] = []
         self._pending = 0
-        # scipy.signal is imported here, where the decode builds its front ends, rather than
-        # at the first run: a worker process forked later then finds it imported
-        _plain()
+
+    def expect(self, n_samples: int) -> None:
+        """The capture holds ``n_samples`` samples (an optional front-end method the decode
+        calls before its pass): for a long one scipy.signal is imported now (see :func:`_run`),
+        before a worker process is forked."""
+        if n_samples > LONG_CAPTURE_S * self.sample_rate:
+            _plain()
 
     @classmethod
     def calibrate(
@@ -273,8 +278,9 @@ class VrFrontEnd(SampleFeed):
         envelope limits, alternating) or an insignificant one (below the arming level: noise
         about the zero, in the gap); returns how many were closed (0: the first is neither).
 
-        The running averages follow first-order recursions; computed with ``lfilter`` from the
-        state before the run, they are what :meth:`_close` gives one step at a time. Which
+        The running averages follow first-order recursions; computed over the run at once
+        (:func:`_run`) from the state before it, they are what :meth:`_close` gives one step
+        at a time. Which
         half-waves are insignificant is guessed first, the averages are computed for that guess
         and the guess is then checked half-wave by half-wave against them: the run ends at the
         first half-wave the guess got wrong (it is closed on its own by the caller).
@@ -586,10 +592,27 @@ def _compare(x: np.ndarray, above: tuple[str, float]) -> np.ndarray:
 
 
 def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
-    """The recursion ``rec`` over ``x`` from the value ``y0``: y[0], y[1], ..."""
-    if len(x) <= RUN_BY_STEPS and _plain():
-        return _steps_of(rec, y0, x)
-    return _lfilter_run(rec, y0, x)
+    """The recursion ``rec`` over ``x`` from the value ``y0``: y[0], y[1], ..., as
+    :func:`_follow` takes each step.
+
+    Computed in Python, or by ``scipy.signal.lfilter`` where that gives the same numbers to the
+    last bit (:func:`_plain`): many times faster on a long run, but importing scipy.signal
+    costs 0.5-0.8 s, more than all the runs of a capture of a few minutes take in Python. So a
+    run longer than :data:`RUN_BY_STEPS` goes to ``lfilter`` once scipy.signal is imported
+    (:meth:`VrFrontEnd.expect` imports it for a long capture) or once this process has stepped
+    :data:`PYTHON_STEPS` values; the numbers, and so the edges, are the same either way."""
+    global _stepped
+    if len(x) > RUN_BY_STEPS:
+        if _stepped > PYTHON_STEPS or "scipy.signal" in sys.modules:
+            if _plain():  # (imports scipy.signal)
+                return _lfilter_run(rec, y0, x)
+        else:
+            _stepped += len(x)
+    return _steps_of(rec, y0, x)
+
+
+#: values the VR front ends of this process have stepped in Python on long runs (see _run)
+_stepped = 0
 
 
 def _envelope_through(
@@ -641,7 +664,7 @@ def _lfilter_run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarr
 
 def _steps_of(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     """The recursion ``rec`` step by step, as :func:`_follow` takes each step (the same
-    numbers as ``lfilter`` when :func:`_plain`): a short run costs less than calling it."""
+    numbers as ``lfilter`` when :func:`_plain`)."""
     b, k = rec
     out = []
     y = y0
@@ -654,7 +677,7 @@ def _steps_of(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
 def _lfilter_is_plain() -> bool:
     """True when :func:`scipy.signal.lfilter` computes a step of a first-order recursion as
     Python does, ``b * x + k * y``, to the last bit (it does unless the compiled library fuses
-    multiplies and adds); then a single step need not call it."""
+    multiplies and adds); then :func:`_run` may hand it the long runs."""
     rng = np.random.default_rng(1)
     x = rng.random(512) * 10.0 ** rng.integers(-6, 3, 512)
     for b, k in (_ENVELOPE, _SLOW, _WIDTH):
@@ -666,28 +689,31 @@ def _lfilter_is_plain() -> bool:
     return True
 
 
-#: runs of at most this many half-waves are computed step by step (see :func:`_run`)
+#: runs of at most this many half-waves are computed step by step (see :func:`_run`): a
+#: short run costs less than calling ``lfilter``
 RUN_BY_STEPS = 96
+#: values stepped in Python before ``lfilter`` takes the long runs (about 0.3 s; an idle
+#: engine's VR crank gives some 5 000 a second of capture)
+PYTHON_STEPS = 4_000_000
+#: captures longer than this (s) have their runs computed by ``lfilter`` from the start
+LONG_CAPTURE_S = 120.0
 
 
 @functools.cache
 def _plain() -> bool:
-    """:func:`_lfilter_is_plain`, found out once, when a VR front end first needs it (not on
-    import: scipy.signal costs 0.7 s to import, which a decode without a VR channel need not
-    pay)"""
+    """:func:`_lfilter_is_plain`, found out once, when a VR front end first decides to use
+    ``lfilter`` (not on import: scipy.signal costs 0.5-0.8 s to import)"""
     return _lfilter_is_plain()
 
 
 def _follow(rec: tuple[float, float], y0: float, x: float) -> float:
-    """One step of the recursion ``rec`` from ``y0`` with the new value ``x``: the number
-    :func:`_run` gives for it.
+    """One step of the recursion ``rec`` from ``y0`` with the new value ``x``: the number a
+    run (:func:`_run`) gives for it.
 
     >>> _follow(_SLOW, 1.0, 3.0)
     1.1
     """
-    if _plain():
-        return rec[0] * x + rec[1] * y0
-    return float(_lfilter_run(rec, y0, np.array([x]))[0])
+    return rec[0] * x + rec[1] * y0
 
 
 def spectral_noise(
