@@ -280,10 +280,10 @@ class VrFrontEnd(SampleFeed):
 
         The running averages follow first-order recursions; computed over the run at once
         (:func:`_run`) from the state before it, they are what :meth:`_close` gives one step
-        at a time. Which
-        half-waves are insignificant is guessed first, the averages are computed for that guess
-        and the guess is then checked half-wave by half-wave against them: the run ends at the
-        first half-wave the guess got wrong (it is closed on its own by the caller).
+        at a time. Which half-waves are insignificant is guessed first, the averages are
+        computed for that guess and the guess is then checked half-wave by half-wave against
+        them: the run ends at the first half-wave the guess got wrong (it is closed on its own
+        by the caller).
         """
         if self._width <= 0 or sign[0] == self._state:
             return 0
