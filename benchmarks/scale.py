@@ -22,7 +22,9 @@ What it does:
    read, the decode's peak resident memory (``ru_maxrss``), the worker's (pages it shares with
    the decode included) and the peak of both processes' proportional set sizes together
    (sampled every 50 ms: shared pages count once); in a process of its own, reads the WAV in one
-   piece as well when it fits ``--one-shot-mb``;
+   piece as well when it fits ``--one-shot-mb``; then, from the shortest and the longest WAV of
+   each sensor, what each minute of capture more adds to the decode and to the read (the
+   throughput, apart from the fixed work at a decode's start and end) and that fixed part;
 3. for the CSV: times toothcomb's parse of the whole file (done once, when it is opened: every
    row checked, the clock fitted, the values spooled for the decode's passes), once without
    pyarrow (by the vectorised readers or numpy's parser) and, when the ``fast-csv`` extra is
@@ -362,6 +364,31 @@ def csv_seconds(folder: Path, megabytes: float, rate: float) -> float:
     return max(1.0, round(megabytes * 1e6 / per_s))
 
 
+def _print_per_minute(measured: dict[str, dict[float, dict]]) -> None:
+    """What each minute of capture adds to the decode and to the read, from the shortest and
+    the longest WAV of each sensor (the difference of their times over the difference of their
+    lengths), and what is left of the shortest decode at no length: its fixed part."""
+    lines = []
+    for crank, by_length in measured.items():
+        if len(by_length) < 2:
+            continue
+        m0, m1 = min(by_length), max(by_length)
+        r0, r1 = by_length[m0], by_length[m1]
+        span = m1 - m0
+        decode = (r1["decode_s"] - r0["decode_s"]) / span
+        alone = (r1["alone_s"] - r0["alone_s"]) / span
+        read = (r1["read_s"] - r0["read_s"]) / span
+        fixed = r0["decode_s"] - decode * m0
+        lines.append(f"  {crank:>4}: decode {decode:.3f} s, read {read:.3f} s, ratio "
+                     f"{decode / read:.2f} (one process {alone:.3f} s, {alone / read:.2f}); "
+                     f"fixed part of a decode {fixed:.3f} s")
+    if lines:
+        print(f"each minute of capture more, from {min(min(v) for v in measured.values()):g} to "
+              f"{max(max(v) for v in measured.values()):g} min (the throughput, without the "
+              "fixed work of a decode's start and end):")
+        print("\n".join(lines), flush=True)
+
+
 def make_fixed_csv(path: Path, sc, decimals: int = 5) -> float:
     """Write ``sc`` to ``path`` as a CSV whose channels are printed at ``decimals`` fixed
     decimals, as a data logger or a high-resolution scope export prints them (nearly every value
@@ -459,6 +486,7 @@ def main(argv: list[str] | None = None) -> int:
             print(f"{'crank':>5} {'min':>5} {'MB':>7} {'make s':>7} {'read s':>7} {'1-shot s':>8} "
                   f"{'decode s':>9} {'ratio':>6} {'1-proc s':>8} {'ratio':>6} {'Msamp/s':>8} "
                   f"{'peak MiB':>9} {'worker':>7} {'PSS':>5}  result")
+            measured: dict[str, dict[float, dict]] = {crank: {} for crank in a.sensors}
             for minutes in a.minutes:
                 for crank in a.sensors:
                     path = folder / f"idle-{crank}-{minutes:g}min.wav"
@@ -481,8 +509,10 @@ def main(argv: list[str] | None = None) -> int:
                           f"{r['worker_peak_mib']:7.0f} {r['pss_mib']:5.0f}  "
                           f"{r['rpm']:.0f} rpm, {r['references']} refs, "
                           f"{r['sync_losses']} losses; cam {edges}", flush=True)
+                    measured[crank][minutes] = r
                     if a.profile:
                         _print_profile(path, a.block_size, r)
+            _print_per_minute(measured)
         longest = max(a.minutes)
         if "hdf5" in a.only:
             path = folder / f"idle-vr-{longest:g}min.h5"
