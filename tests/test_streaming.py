@@ -427,6 +427,34 @@ def test_gathered_blocks_give_the_edges_of_blocks_searched_as_they_come(kind: st
         assert rej == rejected
 
 
+def test_vr_teeth_after_a_quiet_gap_are_closed_alone_and_one_run_spans_a_revolution(
+    monkeypatch,
+):
+    """In the gap the envelope decays, and the first teeth after it are taller than four times
+    the envelope: not ordinary, so a run would stop at each of them at once. They are closed
+    alone, and the run after them reaches the next gap: about one run per revolution (the
+    closing before counted about four), with the edges of closing every half-wave in turn.
+    (A 36-1 wheel at 300 teeth/s: 16 gaps in 2 s.)"""
+    fs, n = 100_000.0, 200_000
+    phase = 2 * np.pi * 300.0 * np.arange(n) / fs
+    gap = (np.floor(phase / (2 * np.pi)) % 36) == 35
+    x = np.where(gap, 0.0, np.sin(phase)) + 0.003 * np.random.default_rng(5).normal(size=n)
+    lv = ChannelLevels("ch0", n, -1, 1, 0, 0.7, (-1, -1, -0.9, -0.5, 0, 0.5, 0.9, 1, 1),
+                       0.003, 0.0)
+    runs: list[int] = []
+    mixed = vr_mod.VrFrontEnd._close_mixed
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_mixed",
+                        lambda self, *a: runs.append(1) or mixed(self, *a))
+    fast = _edges_of(vr_mod.VrFrontEnd(fs, lv), x, 8192)
+    gaps = int(np.count_nonzero(np.diff(gap.astype(int)) == 1))
+    assert gaps == 16
+    assert len(runs) <= gaps + 4, len(runs)
+    monkeypatch.setattr(vr_mod.VrFrontEnd, "_close_run", lambda self, *a: 0)
+    slow = _edges_of(vr_mod.VrFrontEnd(fs, lv), x, 8192)
+    assert len(slow) > 1000
+    _assert_same_edges(fast, slow)
+
+
 def test_vr_a_wrong_guess_of_quiet_half_waves_changes_nothing(monkeypatch):
     """Runs of half-waves are closed at once for a guess of which ones are insignificant; the
     guess is checked against the running averages, so even a random one must give what

@@ -392,6 +392,15 @@ class VrFrontEnd(SampleFeed):
                 alone = alone - 1 if ordinary else ALONE_AFTER_ODD
                 streak = streak + 1 if ordinary else 0
                 continue
+            if peak[i] > 4.0 * self.envelope and sign[i] != self._state:
+                # a tooth the envelope has not caught up with (the first few after a quiet gap,
+                # which let it decay): a run would stop at it at once, so it is closed alone
+                self._close(
+                    float(start[i]), float(end[i]), int(sign[i]), float(peak[i]),
+                    times, dirs, strength,
+                )
+                i += 1
+                continue
             done = self._close_run(
                 start[i : i + span], end[i : i + span], sign[i : i + span], peak[i : i + span],
                 times, dirs, strength,
