@@ -121,6 +121,10 @@ class EdgePass:
             and _worker.can_fork()
         ):
             return
+        for fe in theirs.values():  # an optional method: what the worker should inherit
+            before_fork = getattr(fe, "before_fork", None)
+            if before_fork is not None:
+                before_fork()
         try:
             self._worker = _worker.FrontEndWorker(
                 self._source, theirs, start, scale, self._block_size

@@ -661,10 +661,6 @@ def decode_capture(
             c: _Clipped(_frontend(as_pwm[c], fs, levels[c]), levels[c]) for c in as_pwm if c in live
         }
         total = info.n_samples
-        for fe in fronts.values():  # an optional method: a front end may prepare for the length
-            expect = getattr(fe, "expect", None)
-            if expect is not None:
-                expect(total)
         edge_pass = EdgePass(src, fronts, pwm_views, opts.block_size, watch)
         ending.callback(edge_pass.close)
         got = Received(edge_pass, (lambda s: progress("edges", s, total)) if progress else None)

@@ -86,21 +86,31 @@ def test_a_window_longer_than_the_series_is_refused() -> None:
         savgol_filter(np.arange(4.0), 5, 2)
 
 
-#: in a fresh process: decode a capture and list the scipy modules that got imported
+#: in a fresh process: decode a capture (with a worker process from its first samples on, if
+#: asked and this machine can fork one) and list the scipy modules that got imported
 IMPORTS = r"""
 import json, sys
-exec(sys.argv[2])
+from toothcomb.decoders import worker
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
-r = decode_capture(sys.argv[1], DecodeOptions(worker_process=False))
-print(json.dumps({"refs": len(r.crank.reference_times_s),
+forked = []
+if sys.argv[2] == "worker":
+    worker.MIN_SAMPLES = 1
+    made = worker.FrontEndWorker.__init__
+    def counted(self, *args, **kwargs):
+        forked.append(sorted(m for m in sys.modules if m.split(".")[0] == "scipy"))
+        made(self, *args, **kwargs)
+    worker.FrontEndWorker.__init__ = counted
+r = decode_capture(sys.argv[1], DecodeOptions(worker_process=sys.argv[2] == "worker"))
+print(json.dumps({"refs": len(r.crank.reference_times_s), "forked": forked,
                   "scipy": sorted(m for m in sys.modules if m.split(".")[0] == "scipy")}))
 """
 
 
-def _decode_imports(path: Path, before: str = "") -> dict:
-    """What a decode of ``path`` in a fresh process imports (``before``: code run first)."""
-    out = subprocess.run([sys.executable, "-c", IMPORTS, str(path), before],
+def _decode_imports(path: Path, how: str = "one-process") -> dict:
+    """What a decode of ``path`` in a fresh process imports; ``how``: "worker" to hand the
+    crank to a worker process, and list what was imported when it was forked."""
+    out = subprocess.run([sys.executable, "-c", IMPORTS, str(path), how],
                          capture_output=True, text=True, check=True)
     return json.loads(out.stdout)
 
@@ -115,16 +125,21 @@ def test_a_hall_decode_loads_no_scipy(tmp_path: Path) -> None:
     assert got["scipy"] == []
 
 
-def test_a_short_vr_decode_loads_no_scipy_and_a_long_one_does(tmp_path: Path) -> None:
+def test_a_vr_decode_loads_scipy_only_for_a_worker(tmp_path: Path) -> None:
     """The VR front end's running averages are stepped in Python on a short capture (importing
-    scipy.signal for lfilter would cost more); a long one imports it before the pass (here
-    "long" is made 1 s, so that a short capture stands in for it)."""
+    scipy.signal for lfilter would cost more); when its front end goes to a worker process
+    (a long capture: here forced from the first samples on), scipy.signal is imported before
+    the fork, so that the worker has it."""
+    from toothcomb.decoders.worker import can_fork
+
     path = tmp_path / "vr.flac"
-    simulate(preset("idle-60-2-vr-soundcard", duration_s=1.5)).write(path)
+    # longer than the first seconds the decode looks at before it may hand the crank over
+    simulate(preset("idle-60-2-vr-soundcard", duration_s=8.0)).write(path)
     got = _decode_imports(path)
-    assert got["refs"] >= 15
-    assert got["scipy"] == []
-    got = _decode_imports(path, "import toothcomb.decoders.frontends.vr as v; "
-                                "v.LONG_CAPTURE_S = 1.0")
-    assert got["refs"] >= 15
-    assert "scipy.signal" in got["scipy"]
+    assert got["refs"] >= 100  # 800 rpm for 8 s
+    assert got["scipy"] == [] and got["forked"] == []
+    if not can_fork():
+        pytest.skip("no worker process on this machine (Linux with two cores or more)")
+    got = _decode_imports(path, "worker")
+    assert got["refs"] >= 100
+    assert len(got["forked"]) == 1 and "scipy.signal" in got["forked"][0]

@@ -20,8 +20,8 @@ from ..model import ChannelLevels, Edges
 
 class FrontEnd(Protocol):
     """The contract of a ``toothcomb.frontends`` plugin. A front end may also have a method
-    ``expect(n_samples)``, which the decode calls with the capture's length before the first
-    block (the VR front end decides there how to compute its running averages)."""
+    ``before_fork()``, which the decode calls just before the front end is handed to a worker
+    process (the VR front end imports there what the worker would otherwise import again)."""
 
     name: str
 

@@ -110,12 +110,11 @@ class VrFrontEnd(SampleFeed):
         self._p_peak: list[np.ndarray] = []
         self._pending = 0
 
-    def expect(self, n_samples: int) -> None:
-        """The capture holds ``n_samples`` samples (an optional front-end method the decode
-        calls before its pass): for a long one scipy.signal is imported now (see :func:`_run`),
-        before a worker process is forked."""
-        if n_samples > LONG_CAPTURE_S * self.sample_rate:
-            _plain()
+    def before_fork(self) -> None:
+        """The front end goes to a worker process (an optional front-end method the decode
+        calls before it forks one, on a long capture): scipy.signal is imported now, so that
+        the worker finds it imported and its long runs go to ``lfilter`` (see :func:`_run`)."""
+        _plain()
 
     @classmethod
     def calibrate(
@@ -608,8 +607,9 @@ def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     last bit (:func:`_plain`): many times faster on a long run, but importing scipy.signal
     costs 0.5-0.8 s, more than all the runs of a capture of a few minutes take in Python. So a
     run longer than :data:`RUN_BY_STEPS` goes to ``lfilter`` once scipy.signal is imported
-    (:meth:`VrFrontEnd.expect` imports it for a long capture) or once this process has stepped
-    :data:`PYTHON_STEPS` values; the numbers, and so the edges, are the same either way."""
+    (:meth:`VrFrontEnd.before_fork` imports it before a worker process takes the front end) or
+    once this process has stepped :data:`PYTHON_STEPS` values; the numbers, and so the edges,
+    are the same either way."""
     global _stepped
     if len(x) > RUN_BY_STEPS:
         if _stepped > PYTHON_STEPS or "scipy.signal" in sys.modules:
@@ -704,8 +704,6 @@ RUN_BY_STEPS = 96
 #: values stepped in Python before ``lfilter`` takes the long runs (about 0.3 s; an idle
 #: engine's VR crank gives some 5 000 a second of capture)
 PYTHON_STEPS = 4_000_000
-#: captures longer than this (s) have their runs computed by ``lfilter`` from the start
-LONG_CAPTURE_S = 120.0
 
 
 @functools.cache
