@@ -415,9 +415,9 @@ class FiniteWatch:
     """Catches NaN and infinite samples while a capture streams through a decode.
 
     Levels estimated from windows (:func:`estimate_levels`) can miss a bad sample; this looks at
-    every block (one sum per channel: NaN and infinity survive a sum) and, on the first bad block,
-    makes the exact levels pass so that the :class:`SignalError` names the first bad sample and
-    the count, as :func:`check_finite` does. Integer sample formats cannot hold such values and
+    every block (one sum of all its samples: NaN and infinity survive a sum) and, on the first
+    bad block, makes the exact levels pass so that the :class:`SignalError` names the first bad
+    sample and the count, as :func:`check_finite` does. Integer sample formats cannot hold such values and
     are not looked at.
 
     >>> import numpy as np
@@ -447,7 +447,9 @@ class FiniteWatch:
         if not self.active or data.size == 0:
             return
         with np.errstate(over="ignore", invalid="ignore"):
-            if np.isfinite(np.add.reduce(data, axis=0)).all():
+            # one sum over every sample, in memory order: a sum per channel down the rows of a
+            # frame-major block (as most readers give them) takes some 35 times as long
+            if np.isfinite(np.add.reduce(data, axis=None)):
                 return
         if np.isfinite(data).all():  # the sum overflowed on large finite values
             return
