@@ -113,11 +113,10 @@ class EdgePass:
         n = self._source.info.n_samples
         if not (
             theirs
-            and by_codes
-            and scale
+            and (scale or not by_codes)
             and n - start >= self._worker_min
             and start % self._block_size == 0
-            and _worker.starts_anywhere(self._source)
+            and _worker.starts_anywhere(self._source, codes=by_codes)
             and _worker.can_fork()
         ):
             return
@@ -127,7 +126,7 @@ class EdgePass:
                 before_fork()
         try:
             self._worker = _worker.FrontEndWorker(
-                self._source, theirs, start, scale, self._block_size
+                self._source, theirs, start, scale if by_codes else None, self._block_size
             )
         except OSError:  # no pipe or no process to be had (limits, memory): one process it is
             return

@@ -65,10 +65,12 @@ def can_fork() -> bool:
     return cores >= 2 and threading.active_count() == 1
 
 
-def starts_anywhere(source: Any) -> bool:
-    """Whether ``source`` gives its integer codes from any block on (``code_blocks(size,
-    start=...)``), which a worker needs to read its share of the file itself."""
-    blocks = getattr(source, "code_blocks", None)
+def starts_anywhere(source: Any, codes: bool = True) -> bool:
+    """Whether ``source`` gives its integer codes (``codes``: ``code_blocks(size, start=...)``)
+    or its float samples (``blocks_from(size, start=...)``) from any block on, which a worker
+    needs to read its share of the file itself (opening it anew: a file object shared with the
+    parent would move under both)."""
+    blocks = getattr(source, "code_blocks" if codes else "blocks_from", None)
     if blocks is None:
         return False
     try:
@@ -213,7 +215,7 @@ class FrontEndWorker:
         source: Any,
         frontends: dict[int, Any],
         start: int,
-        scale: float,
+        scale: float | None,
         block_size: int,
     ) -> None:
         self.channels = tuple(sorted(frontends))
@@ -326,20 +328,31 @@ def _work(  # pragma: no cover - runs in the forked worker
     frontends: dict[int, Any],
     channels: tuple[int, ...],
     start: int,
-    scale: float,
+    scale: float | None,
     block_size: int,
 ) -> None:
     """The worker's whole life: the blocks, the front ends, the edges back; then exit without
-    running anything of the parent's (no atexit, no finalizers)."""
+    running anything of the parent's (no atexit, no finalizers). ``scale``: the value of an
+    integer code, or None for float samples."""
     code = 0
     try:
         signal.signal(signal.SIGINT, signal.SIG_IGN)
         warnings.simplefilter("ignore")
         out: list[tuple[int, dict[int, Edges], dict[int, float]]] = []
-        for block in source.code_blocks(block_size, start=start):
+        blocks = (
+            source.code_blocks(block_size, start=start)
+            if scale is not None
+            else source.blocks_from(block_size, start=start)
+        )
+        for block in blocks:
             data = block.data
             edges = {
-                c: fe.process_codes(data[:, c], block.start, scale) for c, fe in frontends.items()
+                c: (
+                    fe.process_codes(data[:, c], block.start, scale)
+                    if scale is not None
+                    else fe.process(data[:, c], block.start)
+                )
+                for c, fe in frontends.items()
             }
             out.append((block.stop, edges, settled_times(frontends)))
             if len(out) >= GROUP:

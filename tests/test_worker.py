@@ -30,6 +30,7 @@ from toothcomb.decoders.simulate import (
     Instrument,
     ValveDrive,
     preset,
+    simulate,
 )
 
 RNG = np.random.default_rng(4711)
@@ -131,6 +132,24 @@ def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
     assert decode_json(path, block_size=3001) == alone
     if name == "valve":
         assert len(json.loads(alone)["actuators"]) == 1
+    assert _no_child_left()
+
+
+@pytest.mark.parametrize("name", ["idle-60-2-vr-soundcard", "phaser-sweep-60-2-hall"])
+def test_the_worker_takes_float_samples_too(tmp_path, forks, name):
+    """A 32-bit float WAV (what many recording programs write) holds no integer codes: the
+    worker reads its float samples from the file itself and gives the decode of one process."""
+    sim = simulate(preset(name, duration_s=7.0).replace(
+        instrument=Instrument(kind="float", sample_rate=48_000.0)))
+    path = tmp_path / "float.wav"
+    peak = float(np.max(np.abs(sim.samples)))
+    sf.write(path, sim.samples / (2 * peak), 48_000, subtype="FLOAT")
+    alone = decode_json(path, worker_process=False, block_size=4096)
+    assert forks == []
+    assert decode_json(path, block_size=4096) == alone
+    ((channels, start),) = forks
+    assert len(channels) == 1 and start > 0 and start % 4096 == 0
+    assert len(json.loads(alone)["crank"]["reference_times_s"]) > 50
     assert _no_child_left()
 
 
@@ -324,6 +343,22 @@ def test_code_blocks_from_a_later_block_are_the_same_blocks(tmp_path, fmt, subty
         assert list(src.code_blocks(4096, start=src.info.n_samples)) == []
         with pytest.raises(ValueError, match="not a block boundary"):
             next(src.code_blocks(4096, start=4000))
+
+
+@pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16"])
+def test_float_blocks_from_a_later_block_are_the_same_blocks(tmp_path, subtype):
+    x = np.clip(RNG.normal(size=(50_000, 2)) * 0.3, -1.0, 1.0)
+    path = tmp_path / "t.wav"
+    sf.write(path, x, 48_000, subtype=subtype)
+    with open_capture(str(path)) as src:
+        whole = [(b.start, b.data.copy()) for b in src.blocks(4096)]
+        later = [(b.start, b.data.copy()) for b in src.blocks_from(4096, start=3 * 4096)]
+        assert [s for s, _ in later] == [s for s, _ in whole[3:]]
+        assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(whole[3:], later, strict=True))
+        assert list(src.blocks_from(4096, start=src.info.n_samples)) == []
+        with pytest.raises(ValueError, match="not a block boundary"):
+            next(src.blocks_from(4096, start=4000))
+    assert worker_mod.starts_anywhere(src, codes=False)
 
 
 def test_sources_that_cannot_start_later_keep_their_front_ends():

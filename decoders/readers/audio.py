@@ -371,14 +371,25 @@ class AudioSource(SourceBase):
         ``start``, a multiple of ``block_size`` (or the end), skips the blocks before it (their
         samples are not read): the blocks from there on are those a pass from the first sample
         gives."""
-        size = check_block_size(block_size)
+        check_block_size(block_size)
         self._check_open()
         if self.code_scale is None:
             return
+        yield from self._blocks_from(block_size, start, codes=True)
+
+    def blocks_from(self, block_size: int, start: int = 0) -> Iterator[Block]:
+        """The samples as :meth:`blocks` gives them (float64), from ``start`` on (a multiple of
+        ``block_size``, or the end; the samples before it are not read): what a worker process
+        reads of a file whose samples are not integers (:meth:`code_blocks` gives those)."""
+        yield from self._blocks_from(block_size, start, codes=False)
+
+    def _blocks_from(self, block_size: int, start: int, codes: bool) -> Iterator[Block]:
+        size = check_block_size(block_size)
+        self._check_open()
         if not 0 <= start <= self.info.n_samples or (start % size and start != self.info.n_samples):
             raise ValueError(f"start {start} is not a block boundary inside the capture")
         got = start
-        for piece in self._pieces(size, codes=True, start=start):
+        for piece in self._pieces(size, codes=codes, start=start):
             yield Block(got, piece)
             got += piece.shape[0]
         if got != self.info.n_samples:
