@@ -123,7 +123,7 @@ class EdgePass:
         for fe in theirs.values():  # an optional method: what the worker should inherit
             before_fork = getattr(fe, "before_fork", None)
             if before_fork is not None:
-                before_fork()
+                before_fork(n - start)
         try:
             self._worker = _worker.FrontEndWorker(
                 self._source, theirs, start, scale if by_codes else None, self._block_size

@@ -94,14 +94,18 @@ from toothcomb.decoders import worker
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 forked = []
-if sys.argv[2] == "worker":
+if sys.argv[2] == "worker-long":
+    # as if the rest of the capture held more half-waves than pay for scipy.signal's import
+    from toothcomb.decoders.frontends import vr
+    vr.FORK_STEPS = 1000
+if sys.argv[2].startswith("worker"):
     worker.MIN_SAMPLES = 1
     made = worker.FrontEndWorker.__init__
     def counted(self, *args, **kwargs):
         forked.append(sorted(m for m in sys.modules if m.split(".")[0] == "scipy"))
         made(self, *args, **kwargs)
     worker.FrontEndWorker.__init__ = counted
-r = decode_capture(sys.argv[1], DecodeOptions(worker_process=sys.argv[2] == "worker"))
+r = decode_capture(sys.argv[1], DecodeOptions(worker_process=sys.argv[2] != "one-process"))
 print(json.dumps({"refs": len(r.crank.reference_times_s), "forked": forked,
                   "scipy": sorted(m for m in sys.modules if m.split(".")[0] == "scipy")}))
 """
@@ -109,7 +113,8 @@ print(json.dumps({"refs": len(r.crank.reference_times_s), "forked": forked,
 
 def _decode_imports(path: Path, how: str = "one-process") -> dict:
     """What a decode of ``path`` in a fresh process imports; ``how``: "worker" to hand the
-    crank to a worker process, and list what was imported when it was forked."""
+    crank to a worker process (and list what was imported when it was forked), "worker-long"
+    as well, as if the capture went on for long."""
     out = subprocess.run([sys.executable, "-c", IMPORTS, str(path), how],
                          capture_output=True, text=True, check=True)
     return json.loads(out.stdout)
@@ -125,11 +130,11 @@ def test_a_hall_decode_loads_no_scipy(tmp_path: Path) -> None:
     assert got["scipy"] == []
 
 
-def test_a_vr_decode_loads_scipy_only_for_a_worker(tmp_path: Path) -> None:
+def test_a_vr_decode_loads_scipy_only_for_a_long_worker(tmp_path: Path) -> None:
     """The VR front end's running averages are stepped in Python on a short capture (importing
-    scipy.signal for lfilter would cost more); when its front end goes to a worker process
-    (a long capture: here forced from the first samples on), scipy.signal is imported before
-    the fork, so that the worker has it."""
+    scipy.signal for lfilter would cost more), also in a worker process (here forced from the
+    first samples on); when the rest of the capture would step more values than pay for the
+    import, scipy.signal is imported before the fork, so that the worker has it."""
     from toothcomb.decoders.worker import can_fork
 
     path = tmp_path / "vr.flac"
@@ -141,5 +146,8 @@ def test_a_vr_decode_loads_scipy_only_for_a_worker(tmp_path: Path) -> None:
     if not can_fork():
         pytest.skip("no worker process on this machine (Linux with two cores or more)")
     got = _decode_imports(path, "worker")
+    assert got["refs"] >= 100
+    assert len(got["forked"]) == 1 and got["forked"][0] == [] and got["scipy"] == []
+    got = _decode_imports(path, "worker-long")
     assert got["refs"] >= 100
     assert len(got["forked"]) == 1 and "scipy.signal" in got["forked"][0]

@@ -23,6 +23,7 @@ from toothcomb.decoders.model import Edges
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
 from toothcomb.decoders.readers import open_capture
+from toothcomb.decoders.readers.write import write_capture
 from toothcomb.decoders.simulate import (
     Channel,
     HallSensor,
@@ -118,6 +119,7 @@ def _scenario(name: str):
         ("hall-crank-spikes", "wav"),
         ("swapped", "wav"),
         ("valve", "flac"),
+        ("idle-60-2-vr-soundcard", "csv"),  # float samples, read back from the CSV's spool
     ],
 )
 def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
@@ -345,11 +347,15 @@ def test_code_blocks_from_a_later_block_are_the_same_blocks(tmp_path, fmt, subty
             next(src.code_blocks(4096, start=4000))
 
 
-@pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16"])
+@pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16", "csv"])
 def test_float_blocks_from_a_later_block_are_the_same_blocks(tmp_path, subtype):
     x = np.clip(RNG.normal(size=(50_000, 2)) * 0.3, -1.0, 1.0)
-    path = tmp_path / "t.wav"
-    sf.write(path, x, 48_000, subtype=subtype)
+    if subtype == "csv":
+        path = tmp_path / "t.csv"
+        write_capture(str(path), x, 48_000.0, ["a", "b"])
+    else:
+        path = tmp_path / "t.wav"
+        sf.write(path, x, 48_000, subtype=subtype)
     with open_capture(str(path)) as src:
         whole = [(b.start, b.data.copy()) for b in src.blocks(4096)]
         later = [(b.start, b.data.copy()) for b in src.blocks_from(4096, start=3 * 4096)]

@@ -20,8 +20,9 @@ from ..model import ChannelLevels, Edges
 
 class FrontEnd(Protocol):
     """The contract of a ``toothcomb.frontends`` plugin. A front end may also have a method
-    ``before_fork()``, which the decode calls just before the front end is handed to a worker
-    process (the VR front end imports there what the worker would otherwise import again)."""
+    ``before_fork(samples_left)``, which the decode calls just before the front end is handed
+    to a worker process for the samples still to come (the VR front end imports there what the
+    worker would otherwise import itself)."""
 
     name: str
 

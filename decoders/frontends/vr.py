@@ -109,12 +109,19 @@ class VrFrontEnd(SampleFeed):
         self._p_after: list[np.ndarray] = []
         self._p_peak: list[np.ndarray] = []
         self._pending = 0
+        self._half_waves = 0  # half-waves closed so far (see before_fork)
 
-    def before_fork(self) -> None:
-        """The front end goes to a worker process (an optional front-end method the decode
-        calls before it forks one, on a long capture): scipy.signal is imported now, so that
-        the worker finds it imported and its long runs go to ``lfilter`` (see :func:`_run`)."""
-        _plain()
+    def before_fork(self, samples_left: int) -> None:
+        """The front end goes to a worker process for the ``samples_left`` samples still to
+        come (an optional front-end method the decode calls before it forks one): when the
+        half-waves to come, at the rate met so far, would step more than :data:`FORK_STEPS`
+        values in Python, scipy.signal is imported now, so that the worker finds it imported
+        and its long runs go to ``lfilter`` (see :func:`_run`); otherwise the worker steps
+        them."""
+        if self._scanned > 0:
+            steps = _RECURSIONS * self._half_waves / self._scanned * samples_left
+            if steps > FORK_STEPS:
+                _plain()
 
     @classmethod
     def calibrate(
@@ -376,6 +383,7 @@ class VrFrontEnd(SampleFeed):
         """Close the half-waves in order: runs of ordinary ones at once, the others (noise
         between teeth, spikes, the first few) one by one."""
         i, m = 0, len(end)
+        self._half_waves += m
         span = m  # half-waves tried at once; shorter after a run stopped early
         alone = 0  # half-waves to close one by one before trying a run again
         streak = 0  # ordinary half-waves closed in a row, by runs or one by one
@@ -607,8 +615,9 @@ def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     last bit (:func:`_plain`): many times faster on a long run, but importing scipy.signal
     costs 0.5-0.8 s, more than all the runs of a capture of a few minutes take in Python. So a
     run longer than :data:`RUN_BY_STEPS` goes to ``lfilter`` once scipy.signal is imported
-    (:meth:`VrFrontEnd.before_fork` imports it before a worker process takes the front end) or
-    once this process has stepped :data:`PYTHON_STEPS` values; the numbers, and so the edges,
+    (:meth:`VrFrontEnd.before_fork` imports it before a worker process takes the front end of
+    a capture long enough to pay for it) or once this process has stepped :data:`PYTHON_STEPS`
+    values; the numbers, and so the edges,
     are the same either way."""
     global _stepped
     if len(x) > RUN_BY_STEPS:
@@ -704,6 +713,13 @@ RUN_BY_STEPS = 96
 #: values stepped in Python before ``lfilter`` takes the long runs (about 0.3 s; an idle
 #: engine's VR crank gives some 5 000 a second of capture)
 PYTHON_STEPS = 4_000_000
+#: the running averages each half-wave steps (envelope, slow average, width)
+_RECURSIONS = 3
+#: values a worker process would step in Python beyond which scipy.signal is imported before
+#: it is forked (about 0.06 s): the worker is the slower of the two processes, so its steps
+#: lengthen the decode, while the import is made once per process (a batch, or the repeated
+#: decodes of the benchmark, pay it once); a 10-minute capture at idle steps some 2.8 million
+FORK_STEPS = 1_000_000
 
 
 @functools.cache

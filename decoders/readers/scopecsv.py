@@ -52,7 +52,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import CaptureError
-from ..model import CaptureInfo
+from ..model import Block, CaptureInfo
 from .base import (
     MAX_CHANNELS,
     ClockFit,
@@ -60,6 +60,7 @@ from .base import (
     NotIncreasing,
     RegularClock,
     SourceBase,
+    check_block_size,
     check_file,
     check_sample_rate,
     number_resolution,
@@ -1632,6 +1633,7 @@ class CsvSource(SourceBase):
         self._spool = spool if spool is not None and spool.ok else None
         if self._spool is not None:
             self.read_windows = self._read_windows
+            self.blocks_from = self._blocks_from
 
     def _read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
         """``length`` samples from each of ``starts`` (fewer at the end), float64 (samples,
@@ -1640,6 +1642,19 @@ class CsvSource(SourceBase):
         assert self._spool is not None
         for s in starts:
             yield self._spool.read(int(s), int(length))
+
+    def _blocks_from(self, block_size: int, start: int = 0) -> Iterator[Block]:
+        """The samples as :meth:`blocks` gives them, from ``start`` on (a multiple of
+        ``block_size``, or the end), read from the spool (by position: a worker process can
+        read it beside this one)."""
+        size = check_block_size(block_size)
+        self._check_open()
+        assert self._spool is not None
+        n = self.info.n_samples
+        if not 0 <= start <= n or (start % size and start != n):
+            raise ValueError(f"start {start} is not a block boundary inside the capture")
+        for at in range(start, n, size):
+            yield Block(at, self._spool.read(at, size))
 
     def _pieces(self, block_size: int) -> Iterator[np.ndarray]:
         spool = self._spool
