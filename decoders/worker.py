@@ -68,8 +68,8 @@ def can_fork() -> bool:
 def starts_anywhere(source: Any, codes: bool = True) -> bool:
     """Whether ``source`` gives its integer codes (``codes``: ``code_blocks(size, start=...)``)
     or its float samples (``blocks_from(size, start=...)``) from any block on, which a worker
-    needs to read its share of the file itself (opening it anew: a file object shared with the
-    parent would move under both)."""
+    needs to read its share of the file itself (by a file of its own, or by position: a file
+    offset shared with the parent would move under both)."""
     blocks = getattr(source, "code_blocks" if codes else "blocks_from", None)
     if blocks is None:
         return False

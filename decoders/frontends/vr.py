@@ -617,8 +617,7 @@ def _run(rec: tuple[float, float], y0: float, x: np.ndarray) -> np.ndarray:
     run longer than :data:`RUN_BY_STEPS` goes to ``lfilter`` once scipy.signal is imported
     (:meth:`VrFrontEnd.before_fork` imports it before a worker process takes the front end of
     a capture long enough to pay for it) or once this process has stepped :data:`PYTHON_STEPS`
-    values; the numbers, and so the edges,
-    are the same either way."""
+    values; the numbers, and so the edges, are the same either way."""
     global _stepped
     if len(x) > RUN_BY_STEPS:
         if _stepped > PYTHON_STEPS or "scipy.signal" in sys.modules:

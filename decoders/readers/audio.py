@@ -29,6 +29,7 @@ from ..model import Block, CaptureInfo
 from .base import (
     SourceBase,
     check_block_size,
+    check_block_start,
     check_channel_count,
     check_file,
     check_sample_rate,
@@ -386,8 +387,7 @@ class AudioSource(SourceBase):
     def _blocks_from(self, block_size: int, start: int, codes: bool) -> Iterator[Block]:
         size = check_block_size(block_size)
         self._check_open()
-        if not 0 <= start <= self.info.n_samples or (start % size and start != self.info.n_samples):
-            raise ValueError(f"start {start} is not a block boundary inside the capture")
+        check_block_start(start, size, self.info.n_samples)
         got = start
         for piece in self._pieces(size, codes=codes, start=start):
             yield Block(got, piece)

@@ -110,6 +110,19 @@ def check_block_size(block_size: object) -> int:
     return int(block_size)
 
 
+def check_block_start(start: int, block_size: int, n_samples: int) -> None:
+    """A pass that starts at sample ``start`` must start at a block boundary inside the capture
+    (or at its end), else :class:`ValueError`.
+
+    >>> check_block_start(8192, 4096, 10_000)
+    >>> check_block_start(4000, 4096, 10_000)
+    Traceback (most recent call last):
+    ValueError: start 4000 is not a block boundary inside the capture
+    """
+    if not 0 <= start <= n_samples or (start % block_size and start != n_samples):
+        raise ValueError(f"start {start} is not a block boundary inside the capture")
+
+
 #: sample rates toothcomb takes, Hz: from one sample in 1000 s to 100 GS/s, the fastest
 #: real-time oscilloscopes; a rate outside is a broken header, not a recording
 # common practice, no source

@@ -61,6 +61,7 @@ from .base import (
     RegularClock,
     SourceBase,
     check_block_size,
+    check_block_start,
     check_file,
     check_sample_rate,
     number_resolution,
@@ -1651,8 +1652,7 @@ class CsvSource(SourceBase):
         self._check_open()
         assert self._spool is not None
         n = self.info.n_samples
-        if not 0 <= start <= n or (start % size and start != n):
-            raise ValueError(f"start {start} is not a block boundary inside the capture")
+        check_block_start(start, size, n)
         for at in range(start, n, size):
             yield Block(at, self._spool.read(at, size))
 
