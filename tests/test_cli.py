@@ -396,6 +396,52 @@ def test_demo_decodes_the_shipped_capture_from_the_current_folder(
 # --------------------------------------------------------------------------- output helpers
 
 
+def _random_json(rng: Any, depth: int = 0) -> Any:
+    """A random value of plain JSON types, as results hold them: numbers, lists of numbers and
+    of pairs, strings with escapes and non-ASCII letters, empty containers, NaN and infinity
+    (which become null), numpy arrays."""
+    import numpy as np
+
+    kind = int(rng.integers(0, 12 if depth < 4 else 6))
+    if kind == 0:
+        return float(rng.normal() * 10.0 ** rng.integers(-12, 12))
+    if kind == 1:
+        return int(rng.integers(-10**12, 10**12))
+    if kind == 2:
+        return [None, True, False, -0.0, float("nan"), float("inf"), 5e-324][rng.integers(0, 7)]
+    if kind == 3:
+        return "".join(rng.choice(list('ab"\\\n\té°ω 1/'), int(rng.integers(0, 8))))
+    if kind == 4:
+        return [float(x) for x in rng.normal(size=int(rng.integers(0, 6)))]
+    if kind == 5:
+        return np.round(rng.normal(size=int(rng.integers(0, 5))), 3)
+    if kind in (6, 7):
+        n = int(rng.integers(0, 5))
+        return [[float(a), float(b)] for a, b in rng.normal(size=(n, 2))]
+    if kind in (8, 9):
+        return {f"k{i}": _random_json(rng, depth + 1) for i in range(int(rng.integers(0, 4)))}
+    return [_random_json(rng, depth + 1) for _ in range(int(rng.integers(0, 4)))]
+
+
+@pytest.mark.parametrize("indent", [2, 4, 0])
+def test_indented_json_is_the_standard_librarys_text(indent: int) -> None:
+    """The indented JSON is written by toothcomb's own writer for speed; it must be the very
+    text the standard library writes, byte for byte, for any value a result can hold.
+    # source: Python's json module (json.dumps with indent, ensure_ascii=False)"""
+    import numpy as np
+
+    rng = np.random.default_rng(1987)
+    for trial in range(400):
+        value = _random_json(rng)
+        want = json.dumps(to_plain(value), indent=indent, allow_nan=False, ensure_ascii=False)
+        assert dumps_json(value, indent=indent) == want + "\n", trial
+    # and a real result: reference times, events, the speed trace
+    result = {"reference_times_s": np.arange(2000) / 13.3, "events": [(0.1, 30.5)] * 500,
+              "trace": tuple((0.004 * i, 800.0 + i % 7) for i in range(3000))}
+    want = json.dumps(to_plain(result), indent=indent, allow_nan=False, ensure_ascii=False)
+    assert dumps_json(result, indent=indent) == want + "\n"
+
+
 def test_to_plain_handles_numpy_and_non_finite() -> None:
     import numpy as np
 
