@@ -79,7 +79,8 @@ def dumps_json(data: Any, *, indent: int | None = 2) -> str:
     return _indented(plain, " " * indent, "\n") + "\n"
 
 
-#: the JSON text of the values written as they are (``bool`` before ``int``: it is one)
+#: the JSON text of null, true and false (looked up for ``None`` and ``bool`` only: an ``int``
+#: is taken by its exact type first, and ``True == 1`` as a key)
 _CONSTANTS = {True: "true", False: "false", None: "null"}
 
 
