@@ -332,19 +332,26 @@ def test_no_worker_for_what_is_left_of_a_short_capture(tmp_path, monkeypatch):
     assert worker_mod.MIN_SAMPLES > 7 * 48_000
 
 
+def _check_later_blocks(whole_pass, from_block, n_samples: int) -> None:
+    """Blocks of 4096 read from the fourth block on (``from_block(4096, start=...)``) are those
+    a pass from the first sample (``whole_pass``) gives there; the end gives none, and a start
+    off a block boundary is refused."""
+    whole = [(b.start, b.data.copy()) for b in whole_pass]
+    later = [(b.start, b.data.copy()) for b in from_block(4096, start=3 * 4096)]
+    assert [s for s, _ in later] == [s for s, _ in whole[3:]]
+    assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(whole[3:], later, strict=True))
+    assert list(from_block(4096, start=n_samples)) == []
+    with pytest.raises(ValueError, match="not a block boundary"):
+        next(from_block(4096, start=4000))
+
+
 @pytest.mark.parametrize("fmt,subtype", [("wav", "PCM_16"), ("wav", "PCM_24"), ("flac", "PCM_16")])
 def test_code_blocks_from_a_later_block_are_the_same_blocks(tmp_path, fmt, subtype):
     x = np.clip(RNG.normal(size=(50_000, 2)) * 0.3, -1.0, 1.0)
     path = tmp_path / f"t.{fmt}"
     sf.write(path, x, 48_000, subtype=subtype)
     with open_capture(str(path)) as src:
-        whole = [(b.start, b.data.copy()) for b in src.code_blocks(4096)]
-        later = [(b.start, b.data.copy()) for b in src.code_blocks(4096, start=3 * 4096)]
-        assert [s for s, _ in later] == [s for s, _ in whole[3:]]
-        assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(whole[3:], later, strict=True))
-        assert list(src.code_blocks(4096, start=src.info.n_samples)) == []
-        with pytest.raises(ValueError, match="not a block boundary"):
-            next(src.code_blocks(4096, start=4000))
+        _check_later_blocks(src.code_blocks(4096), src.code_blocks, src.info.n_samples)
 
 
 @pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16", "csv"])
@@ -357,13 +364,7 @@ def test_float_blocks_from_a_later_block_are_the_same_blocks(tmp_path, subtype):
         path = tmp_path / "t.wav"
         sf.write(path, x, 48_000, subtype=subtype)
     with open_capture(str(path)) as src:
-        whole = [(b.start, b.data.copy()) for b in src.blocks(4096)]
-        later = [(b.start, b.data.copy()) for b in src.blocks_from(4096, start=3 * 4096)]
-        assert [s for s, _ in later] == [s for s, _ in whole[3:]]
-        assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(whole[3:], later, strict=True))
-        assert list(src.blocks_from(4096, start=src.info.n_samples)) == []
-        with pytest.raises(ValueError, match="not a block boundary"):
-            next(src.blocks_from(4096, start=4000))
+        _check_later_blocks(src.blocks(4096), src.blocks_from, src.info.n_samples)
     assert worker_mod.starts_anywhere(src, codes=False)
 
 
