@@ -24,7 +24,8 @@ from __future__ import annotations
 import errno
 import math
 import os
-from collections.abc import Iterable, Iterator, Sequence
+import zlib
+from collections.abc import Container, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -32,12 +33,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ..errors import CaptureError
-from ..model import CaptureInfo
+from ..model import Block, CaptureInfo
 from .base import (
     IrregularClock,
     NotIncreasing,
     RegularClock,
     SourceBase,
+    check_block_size,
+    check_block_start,
     check_channel_count,
     check_file,
     check_sample_rate,
@@ -45,6 +48,7 @@ from .base import (
     split_dataset_path,
     tidy_rate,
 )
+from .h5chunks import StoredSamples
 
 if TYPE_CHECKING:
     import h5py
@@ -450,6 +454,40 @@ class Hdf5Source(SourceBase):
         super().__init__(info)
         self._file = file
         self._columns = columns
+        #: every channel's samples as byte ranges of the file, read by position
+        #: (:mod:`.h5chunks`), with a descriptor of the file's own; None: read through h5py
+        self._stored: list[StoredSamples] | None = None
+        self._fd = -1
+        self._read_stored_layout()
+        if self._stored is not None:
+            self.blocks_from = self._blocks_from
+
+    def _read_stored_layout(self) -> None:
+        if any(c.index is not None for c in self._columns):
+            return
+        stored = [StoredSamples.of(c.dataset) for c in self._columns]
+        if any(s is None or s.n != self.info.n_samples for s in stored):
+            return
+        try:
+            fd = os.open(self._file.filename, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+        except (OSError, TypeError, ValueError):
+            return
+        layouts = [s for s in stored if s is not None]
+        # the layout as the library reports it must give what h5py reads, at both ends
+        n = self.info.n_samples
+        for s, col in zip(layouts, self._columns, strict=True):
+            for a, b in ((0, min(n, s.chunk)), (max(0, n - s.chunk), n)):
+                mine = np.empty(b - a)
+                try:
+                    s.read_into(fd, a, b, mine)
+                    agrees = np.array_equal(mine, col.dataset[a:b].astype(np.float64),
+                                            equal_nan=True)
+                except (OSError, ValueError, zlib.error):
+                    agrees = False
+                if not agrees:
+                    os.close(fd)
+                    return
+        self._stored, self._fd = layouts, fd
 
     def _span(self, block_size: int) -> int:
         ds = self._columns[0].dataset
@@ -462,9 +500,16 @@ class Hdf5Source(SourceBase):
             span = -(-span // chunk) * chunk
         return span
 
-    def _read(self, start: int, stop: int) -> np.ndarray:
+    def _read(self, start: int, stop: int, channels: Container[int] | None = None) -> np.ndarray:
         # channel-major: each channel's samples contiguous, as the front ends read them
         out = np.empty((len(self._columns), stop - start), dtype=np.float64).T
+        if self._stored is not None:
+            for j, s in enumerate(self._stored):
+                if channels is None or j in channels:
+                    s.read_into(self._fd, start, stop, out[:, j])
+                else:
+                    out[:, j] = 0.0
+            return out
         done: dict[int, np.ndarray] = {}
         for j, col in enumerate(self._columns):
             ds = col.dataset
@@ -482,14 +527,32 @@ class Hdf5Source(SourceBase):
         n = self.info.n_samples
         span = self._span(block_size)
         for start in range(0, n, span):
-            stop = min(n, start + span)
-            try:
-                yield self._read(start, stop)
-            except (OSError, RuntimeError, ValueError) as exc:
-                raise CaptureError(
-                    f"{self.info.path}: samples {start}..{stop} cannot be read ({exc}); the file "
-                    "looks damaged"
-                ) from None
+            yield self._read_checked(start, min(n, start + span))
+
+    def _read_checked(
+        self, start: int, stop: int, channels: Container[int] | None = None
+    ) -> np.ndarray:
+        try:
+            return self._read(start, stop, channels)
+        except (OSError, RuntimeError, ValueError, zlib.error) as exc:
+            raise CaptureError(
+                f"{self.info.path}: samples {start}..{stop} cannot be read ({exc}); the file "
+                "looks damaged"
+            ) from None
+
+    def _blocks_from(
+        self, block_size: int, start: int = 0, channels: Container[int] | None = None
+    ) -> Iterator[Block]:
+        """The samples as :meth:`blocks` gives them, from ``start`` on (a multiple of
+        ``block_size``, or the end), read by position without the HDF5 library: a worker
+        process can read them beside this one. ``channels``: read only these (the others'
+        columns hold zeros)."""
+        size = check_block_size(block_size)
+        self._check_open()
+        n = self.info.n_samples
+        check_block_start(start, size, n)
+        for at in range(start, n, size):
+            yield Block(at, self._read_checked(at, min(n, at + size), channels))
 
     def read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
         """``length`` samples from each of ``starts`` (fewer at the end), as float64 (samples,
@@ -499,6 +562,9 @@ class Hdf5Source(SourceBase):
             yield self._read(int(s), min(n, int(s) + int(length)))
 
     def _close(self) -> None:
+        if self._fd >= 0:
+            os.close(self._fd)
+            self._fd = -1
         try:
             self._file.close()
         except Exception:  # closing a damaged file must not hide the error that led here
