@@ -28,7 +28,7 @@ from typing import Any
 
 from . import worker as _worker
 from .levels import FiniteWatch
-from .model import CaptureSource, Edges
+from .model import Block, CaptureSource, Edges
 
 
 @dataclass(frozen=True)
@@ -79,6 +79,8 @@ class EdgePass:
         #: the sample the worker took over at (None: no worker)
         self.worker_start: int | None = None
         self._rejected: dict[int, dict[int, int]] = {}
+        #: the channels this process reads once a worker reads its own (None: all of them)
+        self._own: frozenset[int] | None = None
         self._gen: Generator[EdgeBatch, None, None] | None = None
 
     def keep(self, channels: set[int]) -> None:
@@ -124,13 +126,20 @@ class EdgePass:
             before_fork = getattr(fe, "before_fork", None)
             if before_fork is not None:
                 before_fork(n - start)
+        # a file that stores each channel apart: the worker reads its channels, this process
+        # the others, and each watches what it reads
+        apart = not by_codes and _worker.reads_apart(self._source)
         try:
             self._worker = _worker.FrontEndWorker(
-                self._source, theirs, start, scale if by_codes else None, self._block_size
+                self._source, theirs, start, scale if by_codes else None, self._block_size,
+                watch=self._watch if apart else None,
             )
         except OSError:  # no pipe or no process to be had (limits, memory): one process it is
             return
         self.worker_start = start
+        if apart:
+            every = frozenset(range(self._source.info.n_channels))
+            self._own = (every - frozenset(theirs)) | frozenset(self._extra)
 
     # -- the work itself: a plain loop over the blocks --
 
@@ -141,10 +150,9 @@ class EdgePass:
         by_codes = bool(scale) and all(
             hasattr(fe, "process_codes") for fe in self._frontends.values()
         )
-        stream = src.code_blocks(self._block_size) if by_codes else src.blocks(self._block_size)
         settled: dict[int, float] | None = None
         try:
-            for block in stream:
+            for block in self._blocks(by_codes):
                 data = block.data
                 self._watch.check(data)
                 if self._to_worker:
@@ -200,6 +208,21 @@ class EdgePass:
             if self._worker is not None:
                 self._worker.close()
                 self._worker = None
+
+    def _blocks(self, by_codes: bool) -> Iterator[Block]:
+        """The blocks of the pass: every channel's samples; once a worker reads its channels
+        itself (:attr:`_own` set), only the others'."""
+        src = self._source
+        size = self._block_size
+        stream = src.code_blocks(size) if by_codes else src.blocks(size)
+        for block in stream:
+            yield block
+            if self._own is not None:
+                close = getattr(stream, "close", None)
+                if close is not None:
+                    close()
+                yield from src.blocks_from(size, start=block.stop, channels=self._own)
+                return
 
     def release(self) -> EdgeBatch:
         """The edges the front ends can time from what they have been fed, without waiting for

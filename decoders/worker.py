@@ -217,6 +217,7 @@ class FrontEndWorker:
         start: int,
         scale: float | None,
         block_size: int,
+        watch: Any = None,
     ) -> None:
         self.channels = tuple(sorted(frontends))
         self._queue: deque[tuple[int, dict[int, Edges], dict[int, float]]] = deque()
@@ -236,7 +237,7 @@ class FrontEndWorker:
         if pid == 0:  # pragma: no cover - the worker (coverage does not follow a fork)
             os.close(read_fd)
             _work(Connection(write_fd, readable=False), source, frontends, self.channels,
-                  start, scale, block_size)
+                  start, scale, block_size, watch)
         os.close(write_fd)
         self._pid = pid
         self._conn = Connection(read_fd, writable=False)
@@ -322,6 +323,27 @@ def settled_times(frontends: dict[int, Any]) -> dict[int, float]:
     return {c: float(fe.settled_s) for c, fe in frontends.items() if hasattr(fe, "settled_s")}
 
 
+def reads_apart(source: Any) -> bool:
+    """Whether ``source`` reads some channels of its float samples without the others
+    (``blocks_from(size, start=..., channels=...)``: an HDF5 file stores each channel apart).
+    The worker then reads only its own, and the decode only the others."""
+    blocks = getattr(source, "blocks_from", None)
+    if blocks is None:
+        return False
+    try:
+        return "channels" in inspect.signature(blocks).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+def _float_blocks(source: Any, block_size: int, start: int, channels: tuple[int, ...]) -> Any:
+    """The float blocks a worker reads from ``start`` on: only its own channels' samples where
+    the source can leave the others out."""
+    if reads_apart(source):
+        return source.blocks_from(block_size, start=start, channels=frozenset(channels))
+    return source.blocks_from(block_size, start=start)
+
+
 def _work(  # pragma: no cover - runs in the forked worker
     conn: Connection,
     source: Any,
@@ -330,10 +352,13 @@ def _work(  # pragma: no cover - runs in the forked worker
     start: int,
     scale: float | None,
     block_size: int,
+    watch: Any = None,
 ) -> None:
     """The worker's whole life: the blocks, the front ends, the edges back; then exit without
     running anything of the parent's (no atexit, no finalizers). ``scale``: the value of an
-    integer code, or None for float samples."""
+    integer code, or None for float samples; ``watch``: a
+    :class:`~toothcomb.decoders.levels.FiniteWatch` for the worker's channels, when the decode
+    does not read them."""
     code = 0
     try:
         signal.signal(signal.SIGINT, signal.SIG_IGN)
@@ -342,10 +367,13 @@ def _work(  # pragma: no cover - runs in the forked worker
         blocks = (
             source.code_blocks(block_size, start=start)
             if scale is not None
-            else source.blocks_from(block_size, start=start)
+            else _float_blocks(source, block_size, start, channels)
         )
         for block in blocks:
             data = block.data
+            if watch is not None:  # the decode does not see these channels' samples
+                for c in channels:
+                    watch.check(data[:, c : c + 1])
             edges = {
                 c: (
                     fe.process_codes(data[:, c], block.start, scale)

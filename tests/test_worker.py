@@ -48,9 +48,9 @@ def forks(monkeypatch):
     made: list[tuple[tuple[int, ...], int]] = []
     real = worker_mod.FrontEndWorker.__init__
 
-    def record(self, source, frontends, start, scale, block_size):
+    def record(self, source, frontends, start, scale, block_size, watch=None):
         made.append((tuple(sorted(frontends)), start))
-        real(self, source, frontends, start, scale, block_size)
+        real(self, source, frontends, start, scale, block_size, watch)
         PIDS.append(self._pid)
 
     PIDS.clear()
@@ -120,6 +120,10 @@ def _scenario(name: str):
         ("swapped", "wav"),
         ("valve", "flac"),
         ("idle-60-2-vr-soundcard", "csv"),  # float samples, read back from the CSV's spool
+        # float samples read by position, each process its own channels
+        ("idle-60-2-vr-soundcard", "h5"),
+        ("phaser-sweep-60-2-hall", "h5"),
+        ("valve", "h5"),
     ],
 )
 def test_the_worker_gives_the_decode_of_one_process(tmp_path, forks, name, fmt):
@@ -354,11 +358,11 @@ def test_code_blocks_from_a_later_block_are_the_same_blocks(tmp_path, fmt, subty
         _check_later_blocks(src.code_blocks(4096), src.code_blocks, src.info.n_samples)
 
 
-@pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16", "csv"])
+@pytest.mark.parametrize("subtype", ["FLOAT", "PCM_16", "csv", "h5"])
 def test_float_blocks_from_a_later_block_are_the_same_blocks(tmp_path, subtype):
     x = np.clip(RNG.normal(size=(50_000, 2)) * 0.3, -1.0, 1.0)
-    if subtype == "csv":
-        path = tmp_path / "t.csv"
+    if subtype in ("csv", "h5"):
+        path = tmp_path / f"t.{subtype}"
         write_capture(str(path), x, 48_000.0, ["a", "b"])
     else:
         path = tmp_path / "t.wav"
@@ -366,6 +370,63 @@ def test_float_blocks_from_a_later_block_are_the_same_blocks(tmp_path, subtype):
     with open_capture(str(path)) as src:
         _check_later_blocks(src.blocks(4096), src.blocks_from, src.info.n_samples)
     assert worker_mod.starts_anywhere(src, codes=False)
+
+
+def test_an_hdf5_decode_reads_only_the_channels_its_worker_does_not(tmp_path, forks,
+                                                                    monkeypatch):
+    """Each channel of an HDF5 file is stored apart: once the worker reads the crank, the
+    decode reads only the others (here the cam), and gives the decode of one process."""
+    from toothcomb.decoders.readers import hdf5 as hdf5_mod
+
+    path, _ = make_capture(tmp_path, _scenario("idle-60-2-vr-soundcard"), "h5")
+    reads: list[frozenset[int] | None] = []
+    real = hdf5_mod.Hdf5Source._read
+
+    def read(self, start, stop, channels=None):
+        reads.append(None if channels is None else frozenset(channels))
+        return real(self, start, stop, channels)
+
+    monkeypatch.setattr(hdf5_mod.Hdf5Source, "_read", read)
+    alone = decode_json(path, worker_process=False, block_size=4096)
+    assert set(reads) == {None}
+    reads.clear()
+    assert decode_json(path, block_size=4096) == alone
+    ((channels, start),) = forks
+    assert channels == (0,) and start > 0
+    # the first blocks (and the levels' windows) with every channel, then the cam's alone
+    assert reads[0] is None and reads[-1] == frozenset({1})
+    first = reads.index(frozenset({1}))
+    assert set(reads[first:]) == {frozenset({1})}
+    # the block the worker starts at is read whole here too; from the next one on, no crank
+    assert len(reads) - first == -(-(7 * 48_000 - start - 4096) // 4096)
+    assert _no_child_left()
+
+
+def test_a_bad_sample_only_the_worker_reads_is_reported_as_in_one_process(tmp_path, forks):
+    """A NaN in the crank's samples of an HDF5 file, where neither the levels' windows nor the
+    decode look, is found by the worker: the same sentence as a decode in one process."""
+    from toothcomb.decoders.errors import SignalError
+    from toothcomb.decoders.levels import WINDOW, window_starts
+
+    sim = simulate(_soundcard(preset("idle-60-2-vr-soundcard", duration_s=12.0)))
+    x = np.array(sim.samples, dtype=np.float64)
+    n = len(x)
+    starts = window_starts(n)
+    bad = int(starts[-3]) + WINDOW + 17  # between two windows, late in the capture
+    assert not any(s <= bad < s + WINDOW for s in starts)
+    x[bad, 0] = np.nan
+    path = tmp_path / "nan.h5"
+    write_capture(str(path), x, 48_000.0, ["crank", "cam"])
+    with pytest.raises(SignalError) as one:
+        decode_capture(str(path), DecodeOptions(worker_process=False, block_size=4096))
+    assert forks == []
+    with pytest.raises(SignalError) as two:
+        decode_capture(str(path), DecodeOptions(block_size=4096))
+    ((channels, start),) = forks
+    assert channels == (0,) and start < bad
+    assert str(two.value) == str(one.value)
+    assert f"first at sample {bad}" in str(one.value)
+    assert _no_child_left()
 
 
 def test_sources_that_cannot_start_later_keep_their_front_ends():
