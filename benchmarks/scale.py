@@ -201,8 +201,23 @@ r = decode_capture(sys.argv[1], DecodeOptions(block_size=int(sys.argv[2])))
 dt = time.perf_counter() - t0
 print(json.dumps({"decode_s": dt,
                   "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
+                  "worker_peak_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
                   "samples": r.capture.n_samples, "revolutions": r.crank.revolutions,
                   "references": len(r.crank.reference_times_s)}))
+"""
+
+#: every channel of an HDF5 capture read through h5py, a block at a time, as stored (the
+#: counterpart of soundfile's read of a WAV)
+H5_READ = r"""
+import json, sys, time
+import h5py
+t0 = time.perf_counter()
+with h5py.File(sys.argv[1], "r") as f:
+    for name in f:
+        ds = f[name]
+        for a in range(0, ds.shape[0], int(sys.argv[2])):
+            ds[a : a + int(sys.argv[2])]
+print(json.dumps({"read_s": time.perf_counter() - t0}))
 """
 
 #: blockwise CSV parse against numpy.loadtxt on the same rows
@@ -517,10 +532,12 @@ def main(argv: list[str] | None = None) -> int:
         if "hdf5" in a.only:
             path = folder / f"idle-vr-{longest:g}min.h5"
             made = make(path, scenario("vr", longest * 60.0, a.rate, "float"), "float32")
+            read = run(H5_READ, str(path), str(a.block_size))["read_s"]
             r = run(DECODE_ONLY, str(path), str(a.block_size))
             print(f"\nHDF5 float32, {longest:g} min at {a.rate:g} Hz "
-                  f"({path.stat().st_size / 1e6:.0f} MB, made in {made:.0f} s): decode "
-                  f"{r['decode_s']:.1f} s, peak {r['peak_mib']:.0f} MiB, "
+                  f"({path.stat().st_size / 1e6:.0f} MB, made in {made:.0f} s): h5py reads it in "
+                  f"{read:.1f} s; decode {r['decode_s']:.1f} s ({r['decode_s'] / read:.2f} of the "
+                  f"read), peak {r['peak_mib']:.0f} MiB (worker {r['worker_peak_mib']:.0f} MiB), "
                   f"{r['references']} reference events", flush=True)
         if "csv" in a.only:
             rate = 500_000.0
