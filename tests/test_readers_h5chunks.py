@@ -108,6 +108,43 @@ def test_layouts_read_elsewhere_give_none(tmp_path):
             assert StoredSamples.of(f[name]) is None, name
 
 
+def test_chunks_beyond_the_size_limit_are_left_to_the_library(tmp_path, monkeypatch):
+    from toothcomb.decoders.readers import h5chunks
+
+    path = tmp_path / "big.h5"
+    _write(path, RNG.normal(size=5000).astype("<f4"), chunks=(1000,), compression="gzip")
+    with h5py.File(path, "r") as f:
+        assert StoredSamples.of(f["x"]) is not None
+        monkeypatch.setattr(h5chunks, "MAX_CHUNK_BYTES", 3999)  # a chunk is 4000 bytes
+        assert StoredSamples.of(f["x"]) is None
+
+
+def test_short_reads_inflate_each_chunk_once(tmp_path, monkeypatch):
+    """Blocks shorter than a chunk (a worker's, say) take it from the one kept."""
+    from toothcomb.decoders.readers import h5chunks
+
+    x = RNG.normal(size=20_000)
+    path = tmp_path / "x.h5"
+    _write(path, x, chunks=(5000,), compression="gzip", shuffle=True)
+    inflated: list[int] = []
+    real = zlib.decompress
+    monkeypatch.setattr(h5chunks.zlib, "decompress",
+                        lambda data: inflated.append(len(data)) or real(data))
+    with h5py.File(path, "r") as f:
+        stored = StoredSamples.of(f["x"])
+    assert stored is not None
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        out = np.empty(20_000)
+        for a in range(0, 20_000, 700):
+            b = min(20_000, a + 700)
+            stored.read_into(fd, a, b, out[a:b])
+    finally:
+        os.close(fd)
+    assert np.array_equal(out, x)
+    assert len(inflated) == 4
+
+
 def test_a_chunk_stored_without_one_of_its_filters(tmp_path):
     """A chunk's filter mask tells which filters were skipped when it was written (bit i:
     filter i of the pipeline): it is read without them."""

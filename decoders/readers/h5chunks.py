@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import os
 import zlib
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -34,15 +33,18 @@ DEFLATE = 1
 SHUFFLE = 2
 #: filter pipelines read here, in the order they were applied when the file was written
 PIPELINES: frozenset[tuple[int, ...]] = frozenset({(), (DEFLATE,), (SHUFFLE,), (SHUFFLE, DEFLATE)})
+#: largest chunk read here: a block may need all of one, and the last one read is kept (h5py's
+#: own chunk cache holds 1 MiB)
+MAX_CHUNK_BYTES = 1 << 24
 
 
-@dataclass(frozen=True)
 class StoredSamples:
     """Where the samples of one 1-D dataset lie in its file, and how they are stored.
 
     ``offsets``/``sizes``: byte offset and stored length of chunk ``i`` (samples
-    ``i * chunk .. (i + 1) * chunk``), or of the one contiguous piece; ``masks``: each chunk's
-    filter mask; ``filters``: the pipeline, as written.
+    ``i * chunk .. (i + 1) * chunk``), or of the one contiguous piece (``chunk`` is then 0);
+    ``masks``: each chunk's filter mask; ``filters``: the pipeline, as written. The last chunk
+    read is kept: blocks shorter than a chunk inflate it once.
 
     >>> import h5py, numpy as np, os, tempfile
     >>> path = os.path.join(tempfile.mkdtemp(), "c.h5")
@@ -59,13 +61,24 @@ class StoredSamples:
     [995.0, 996.0, 997.0, 998.0, 999.0, 0.0, 0.0, 0.0, 0.0, 0.0]
     """
 
-    n: int
-    dtype: np.dtype
-    chunk: int
-    filters: tuple[int, ...]
-    offsets: np.ndarray
-    sizes: np.ndarray
-    masks: np.ndarray
+    def __init__(
+        self,
+        n: int,
+        dtype: np.dtype,
+        chunk: int,
+        filters: tuple[int, ...],
+        offsets: np.ndarray,
+        sizes: np.ndarray,
+        masks: np.ndarray,
+    ) -> None:
+        self.n = n
+        self.dtype = dtype
+        self.chunk = chunk
+        self.filters = filters
+        self.offsets = offsets
+        self.sizes = sizes
+        self.masks = masks
+        self._last: tuple[int, np.ndarray] | None = None
 
     @classmethod
     def of(cls, ds: Any) -> StoredSamples | None:
@@ -89,22 +102,26 @@ class StoredSamples:
             offset = ds.id.get_offset()
             if filters or offset is None:
                 return None
-            one = np.array([offset], dtype=np.int64)
-            return cls(n, dtype, n, (), one, np.array([n * dtype.itemsize], np.int64),
-                       np.zeros(1, np.int64))
+            return cls(n, dtype, 0, (), np.array([offset], np.int64),
+                       np.array([n * dtype.itemsize], np.int64), np.zeros(1, np.int64))
         chunk = int(ds.chunks[0])
+        if chunk * dtype.itemsize > MAX_CHUNK_BYTES:
+            return None
         count = -(-n // chunk)
-        got: list[tuple[int, int, int, int]] = []
-        ds.id.chunk_iter(
-            lambda s: got.append((s.chunk_offset[0], s.byte_offset, s.size, s.filter_mask))
-        )
-        if len(got) != count:  # chunks never written (their fill value is h5py's to give)
+        # chunk k's row: its byte offset, stored size, filter mask; -1 until the library names it
+        table = np.full((count, 3), -1, dtype=np.int64)
+
+        def note(info: Any) -> None:
+            k, rest = divmod(int(info.chunk_offset[0]), chunk)
+            if rest or not 0 <= k < count:
+                raise ValueError("a chunk off the grid")
+            table[k] = (info.byte_offset, info.size, info.filter_mask)
+
+        ds.id.chunk_iter(note)
+        if (table[:, 0] < 0).any():  # chunks never written (their fill value is h5py's to give)
             return None
-        table = np.array(sorted(got), dtype=np.int64)
-        if not np.array_equal(table[:, 0], np.arange(count, dtype=np.int64) * chunk):
-            return None
-        return cls(n, dtype, chunk, filters, table[:, 1].copy(), table[:, 2].copy(),
-                   table[:, 3].copy())
+        return cls(n, dtype, chunk, filters, table[:, 0].copy(), table[:, 1].copy(),
+                   table[:, 2].copy())
 
     def read_into(self, fd: int, start: int, stop: int, out: np.ndarray) -> None:
         """Samples ``start .. stop`` into ``out`` (``stop - start`` values, any float or
@@ -112,12 +129,25 @@ class StoredSamples:
         if not 0 <= start <= stop <= self.n or len(out) != stop - start:
             raise ValueError(f"samples {start}..{stop} are not inside 0..{self.n}")
         c = self.chunk
+        if c == 0:  # one contiguous piece: the stretch asked for, and no more
+            item = self.dtype.itemsize
+            out[:] = self._bytes(fd, int(self.offsets[0]) + start * item, (stop - start) * item,
+                                 "its samples")
+            return
         for i in range(start // c, -(-stop // c)):
             lo, hi = max(start, i * c), min(stop, (i + 1) * c)
             values = self._chunk(fd, i)
             out[lo - start : hi - start] = values[lo - i * c : hi - i * c]
 
+    def _bytes(self, fd: int, offset: int, size: int, what: str) -> np.ndarray:
+        raw = os.pread(fd, size, offset)
+        if len(raw) != size:
+            raise OSError(f"the file ends inside {what}")
+        return np.frombuffer(raw, dtype=self.dtype)
+
     def _chunk(self, fd: int, i: int) -> np.ndarray:
+        if self._last is not None and self._last[0] == i:
+            return self._last[1]
         size = int(self.sizes[i])
         raw = os.pread(fd, size, int(self.offsets[i]))
         if len(raw) != size:
@@ -137,6 +167,7 @@ class StoredSamples:
         want = min(self.chunk, self.n - i * self.chunk)
         if len(values) < want:
             raise OSError(f"chunk {i} of the samples holds {len(values)} values, not {want}")
+        self._last = (i, values)
         return values
 
 
