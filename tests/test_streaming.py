@@ -141,6 +141,65 @@ def test_window_levels_are_the_figures_of_the_windows():
     assert estimate_levels(src, 999, sparse_above=100_000) == got
 
 
+@pytest.mark.parametrize("bits", [8, 16])
+def test_window_levels_of_pcm_codes_are_numpys_figures_to_the_bit(bits):
+    """8- and 16-bit samples (every value a code times 2**-15) are counted, not sorted: the
+    figures are still numpy's to the last bit, flat tops, odd counts and one value included."""
+    n = 600_000
+    step = 2.0 ** (1 - bits)
+    top = 2 ** (bits - 1)
+    t = np.arange(n)
+    hall = np.where(np.sin(t / 53.0) > 0, top - 1, -top // 3) + RNG.integers(-2, 3, n)
+    wave = np.round(0.7 * top * np.sin(t / 91.0)) + RNG.integers(-top // 4, top // 4 + 1, n)
+    flat = np.full(n, 7.0)
+    clipped = np.clip(np.round(1.5 * top * np.sin(t / 17.0)), -top, top - 1)
+    x = np.stack([hall, wave, flat, clipped], axis=1).astype(np.float64) * step
+    src = WindowSource(x)
+    got = estimate_levels(src, 4096, sparse_above=100_000)
+    w = np.concatenate([x[s : s + levels_mod.WINDOW] for s in window_starts(n)])
+    n_windowed = len(w)
+    assert all(levels_mod._coded(w[:, j]) is not None for j in range(4))  # counted, not sorted
+    for j, lv in enumerate(got):
+        v = w[:, j]
+        # source: numpy.percentile (linear method), numpy.median, numpy.mean on the same samples
+        assert lv.percentiles == tuple(float(p) for p in np.percentile(v, ChannelLevels.POINTS))
+        assert lv.minimum == v.min() and lv.maximum == v.max()
+        assert lv.mean == float(v.mean())
+        d = np.abs(np.diff(v.reshape(levels_mod.WINDOWS, -1), axis=1))
+        assert lv.noise == float(np.median(d)) / levels_mod.NOISE_DIVISOR
+    # source: numpy.count_nonzero of the samples at the clipped ends
+    ends = np.count_nonzero(w[:, 3] == w[:, 3].min()) + np.count_nonzero(w[:, 3] == w[:, 3].max())
+    assert got[3].clipped_fraction == ends / n_windowed > 0.1
+    assert got[2].std == 0.0 and got[2].minimum == got[2].maximum == 7 * step
+
+
+def test_counted_percentiles_and_medians_are_numpys():
+    # source: numpy.percentile (linear method) and numpy.median, on samples drawn at random
+    for trial in range(360):
+        if trial < 300:  # few samples, few codes: ties and empty codes everywhere
+            n = int(RNG.integers(1, 2_000))
+            codes = RNG.integers(-300, 300, n) * int(RNG.integers(1, 4))
+        else:  # the whole 16-bit range and many samples: the interpolation's rounding shows
+            n = int(RNG.integers(100_000, 300_000))
+            codes = RNG.integers(-32768, 32768, n)
+        v = codes * levels_mod.CODE
+        low = int(codes.min())
+        counts = np.bincount(codes - low)
+        points = (*sorted(RNG.uniform(0, 100, 5)), 0.0, 0.1, 50.0, 99.9, 100.0)
+        got = levels_mod.coded_percentiles(counts, low, points)
+        assert got == np.percentile(v, points).tolist(), trial
+        d = np.abs(codes)
+        assert levels_mod.coded_median(np.bincount(d)) == float(np.median(d * levels_mod.CODE))
+
+
+def test_samples_off_the_code_grid_are_sorted_as_before():
+    assert levels_mod._coded(np.array([0.5, 0.25 + 2.0**-16])) is None  # between two codes
+    assert levels_mod._coded(np.array([-1.0, 1.0])) is not None  # 65,537 codes, the most counted
+    assert levels_mod._coded(np.array([-1.0, 1.0 + 2.0**-15])) is None  # one too many
+    assert levels_mod._coded(np.array([1e6, 1e6 + 1.0])) is None  # beyond 32-bit codes
+    assert levels_mod._coded(np.array([3.0, 3.0]))[1] == 3 * 2**15
+
+
 def test_a_nan_in_a_window_gives_the_exact_count():
     x = RNG.normal(size=(300_000, 1))
     x[[0, 5, 123_456], 0] = np.nan  # sample 0 lies in the first window
