@@ -224,3 +224,17 @@ def test_a_damaged_chunk_is_one_sentence(tmp_path):
     text = str(err.value)
     assert text.startswith(f"{path}: samples ") and "looks damaged" in text
     assert "\n" not in text
+
+
+def test_without_pread_the_descriptor_is_positioned_instead(tmp_path, monkeypatch):
+    """Where the system has no ``os.pread`` (Windows), the same samples are read."""
+    x = RNG.normal(size=(30_000, 2))
+    path = tmp_path / "c.h5"
+    write_capture(path, x, 48_000.0, ["crank", "cam"])
+    csv = tmp_path / "c.csv"
+    write_capture(csv, x[:5000], 48_000.0, ["crank", "cam"])
+    with_pread = _blocks(path, 4096), _blocks(csv, 1000)
+    monkeypatch.delattr(os, "pread")
+    assert np.array_equal(_blocks(path, 4096), with_pread[0])
+    assert np.array_equal(_blocks(csv, 1000), with_pread[1])
+    assert np.array_equal(with_pread[0], x)

@@ -110,6 +110,33 @@ def check_block_size(block_size: object) -> int:
     return int(block_size)
 
 
+def read_at(fd: int, size: int, offset: int) -> bytes:
+    """Up to ``size`` bytes of file descriptor ``fd`` from byte ``offset`` (fewer only at the
+    end of the file), by position: ``os.pread`` moves no file offset that a forked process
+    shares. Where there is no ``pread`` (Windows; no worker is forked there) the descriptor is
+    positioned and read.
+
+    >>> import os, tempfile
+    >>> fd, path = tempfile.mkstemp()
+    >>> _ = os.write(fd, b"0123456789")
+    >>> read_at(fd, 4, 3), read_at(fd, 4, 8), read_at(fd, 4, 20)
+    (b'3456', b'89', b'')
+    >>> os.close(fd)
+    """
+    pread = getattr(os, "pread", None)
+    if pread is not None:
+        return pread(fd, size, offset)
+    os.lseek(fd, offset, os.SEEK_SET)
+    parts = []
+    while size > 0:
+        got = os.read(fd, size)
+        if not got:
+            break
+        parts.append(got)
+        size -= len(got)
+    return b"".join(parts)
+
+
 def check_block_start(start: int, block_size: int, n_samples: int) -> None:
     """A pass that starts at sample ``start`` must start at a block boundary inside the capture
     (or at its end), else :class:`ValueError`.

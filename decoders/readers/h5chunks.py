@@ -2,8 +2,9 @@
 
 A 1-D dataset stored in one contiguous piece without filters, or in chunks that are at most
 shuffled and deflated, is a list of byte ranges in the file. :class:`StoredSamples` takes that
-list from h5py once, when the capture is opened, and from then on reads the samples with
-``os.pread``, ``zlib`` and numpy alone. That makes two things possible that h5py does not:
+list from h5py once, when the capture is opened, and from then on reads the samples by
+position (``os.pread``), with ``zlib`` and numpy alone. That makes two things possible that
+h5py does not:
 
 - a forked worker process can read its channel of the file: h5py's handles must not be used on
   both sides of a ``fork()``, a file descriptor read by position can;
@@ -22,11 +23,12 @@ are the HDF5 library's own definitions.
 
 from __future__ import annotations
 
-import os
 import zlib
 from typing import Any
 
 import numpy as np
+
+from .base import read_at
 
 #: HDF5 filter identifiers (H5Zpublic.h)
 DEFLATE = 1
@@ -140,7 +142,7 @@ class StoredSamples:
             out[lo - start : hi - start] = values[lo - i * c : hi - i * c]
 
     def _bytes(self, fd: int, offset: int, size: int, what: str) -> np.ndarray:
-        raw = os.pread(fd, size, offset)
+        raw = read_at(fd, size, offset)
         if len(raw) != size:
             raise OSError(f"the file ends inside {what}")
         return np.frombuffer(raw, dtype=self.dtype)
@@ -149,7 +151,7 @@ class StoredSamples:
         if self._last is not None and self._last[0] == i:
             return self._last[1]
         size = int(self.sizes[i])
-        raw = os.pread(fd, size, int(self.offsets[i]))
+        raw = read_at(fd, size, int(self.offsets[i]))
         if len(raw) != size:
             raise OSError(f"the file ends inside chunk {i} of its samples")
         mask = int(self.masks[i])

@@ -65,6 +65,7 @@ from .base import (
     check_file,
     check_sample_rate,
     number_resolution,
+    read_at,
     reject_options,
     tidy_rate,
 )
@@ -1418,7 +1419,7 @@ class _Spool:
         """Rows ``row`` to ``row + count`` (fewer at the end), float64 (rows, channels)."""
         count = max(0, min(count, self.rows - row))
         width = 8 * self.n_channels
-        raw = os.pread(self._file.fileno(), count * width, row * width) if count else b""
+        raw = read_at(self._file.fileno(), count * width, row * width) if count else b""
         return np.frombuffer(raw, dtype="<f8").reshape(-1, self.n_channels)
 
     def reset(self) -> None:
