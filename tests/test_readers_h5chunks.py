@@ -238,3 +238,25 @@ def test_without_pread_the_descriptor_is_positioned_instead(tmp_path, monkeypatc
     assert np.array_equal(_blocks(path, 4096), with_pread[0])
     assert np.array_equal(_blocks(csv, 1000), with_pread[1])
     assert np.array_equal(with_pread[0], x)
+
+
+@pytest.mark.parametrize("kw", [{}, {"chunks": (1000,), "compression": "gzip"}],
+                         ids=["contiguous", "chunked"])
+def test_a_layout_that_does_not_read_as_the_library_reads_is_not_used(tmp_path, monkeypatch, kw):
+    """At open, each channel's first and last samples are read both ways: a layout that gives
+    other values (here every offset 8 bytes off) leaves the file to h5py."""
+    x = RNG.normal(size=5000)
+    path = tmp_path / "x.h5"
+    _write(path, x, **kw)
+    real = StoredSamples.of.__func__
+
+    def shifted(cls, ds):
+        s = real(cls, ds)
+        return cls(s.n, s.dtype, s.chunk, s.filters, s.offsets + 8, s.sizes, s.masks)
+
+    with open_capture(str(path)) as src:
+        assert src._stored is not None
+    monkeypatch.setattr(hdf5_mod.StoredSamples, "of", classmethod(shifted))
+    with open_capture(str(path)) as src:
+        assert src._stored is None
+        assert np.array_equal(np.concatenate([b.data for b in src.blocks(999)])[:, 0], x)
