@@ -6,7 +6,10 @@ it to a forked process from one block on: the worker reads the same blocks from 
 runs the front end it was forked with (its state, calibration and all, is the parent's at that
 block) and sends the edges back in order, while the decode goes on with the other channels and
 the per-edge work. The edges are the very ones one process finds (the same front end on the same
-blocks), so the result does not change; only the wall time does.
+blocks), so the result does not change; only the wall time does. Where the file stores each
+channel apart (an HDF5 file read by position, :mod:`~toothcomb.decoders.readers.h5chunks`), the
+worker reads only its channels and the decode only the others; the worker then also watches its
+samples for NaN, as the decode does with what it reads.
 
 What travels back is bytes in a fixed layout (:func:`pack_blocks`): each block's end, each
 channel's edges as the arrays :class:`~toothcomb.decoders.model.Edges` holds (float64 times,
@@ -207,7 +210,9 @@ class FrontEndWorker:
     pulses each rejected (``rejected``: direction -> count, where a front end counts them),
     comes back with the last edges. Call :meth:`close` when done, also after an error (it
     stops the worker if it still runs). Raises :class:`OSError` when no pipe or process can be
-    had (the caller then keeps its front ends).
+    had (the caller then keeps its front ends). ``watch``: the decode's
+    :class:`~toothcomb.decoders.levels.FiniteWatch`, for a worker whose samples the decode does
+    not read.
     """
 
     def __init__(
