@@ -73,11 +73,15 @@ def starts_anywhere(source: Any, codes: bool = True) -> bool:
     or its float samples (``blocks_from(size, start=...)``) from any block on, which a worker
     needs to read its share of the file itself (by a file of its own, or by position: a file
     offset shared with the parent would move under both)."""
-    blocks = getattr(source, "code_blocks" if codes else "blocks_from", None)
-    if blocks is None:
+    return _takes(getattr(source, "code_blocks" if codes else "blocks_from", None), "start")
+
+
+def _takes(method: Any, name: str) -> bool:
+    """Whether ``method`` (None: there is none) takes a parameter called ``name``."""
+    if method is None:
         return False
     try:
-        return "start" in inspect.signature(blocks).parameters
+        return name in inspect.signature(method).parameters
     except (TypeError, ValueError):
         return False
 
@@ -332,13 +336,7 @@ def reads_apart(source: Any) -> bool:
     """Whether ``source`` reads some channels of its float samples without the others
     (``blocks_from(size, start=..., channels=...)``: an HDF5 file stores each channel apart).
     The worker then reads only its own, and the decode only the others."""
-    blocks = getattr(source, "blocks_from", None)
-    if blocks is None:
-        return False
-    try:
-        return "channels" in inspect.signature(blocks).parameters
-    except (TypeError, ValueError):
-        return False
+    return _takes(getattr(source, "blocks_from", None), "channels")
 
 
 def _float_blocks(source: Any, block_size: int, start: int, channels: tuple[int, ...]) -> Any:

@@ -24,6 +24,7 @@ are the HDF5 library's own definitions.
 from __future__ import annotations
 
 import zlib
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -40,6 +41,7 @@ PIPELINES: frozenset[tuple[int, ...]] = frozenset({(), (DEFLATE,), (SHUFFLE,), (
 MAX_CHUNK_BYTES = 1 << 24
 
 
+@dataclass(eq=False)
 class StoredSamples:
     """Where the samples of one 1-D dataset lie in its file, and how they are stored.
 
@@ -63,24 +65,16 @@ class StoredSamples:
     [995.0, 996.0, 997.0, 998.0, 999.0, 0.0, 0.0, 0.0, 0.0, 0.0]
     """
 
-    def __init__(
-        self,
-        n: int,
-        dtype: np.dtype,
-        chunk: int,
-        filters: tuple[int, ...],
-        offsets: np.ndarray,
-        sizes: np.ndarray,
-        masks: np.ndarray,
-    ) -> None:
-        self.n = n
-        self.dtype = dtype
-        self.chunk = chunk
-        self.filters = filters
-        self.offsets = offsets
-        self.sizes = sizes
-        self.masks = masks
-        self._last: tuple[int, np.ndarray] | None = None
+    n: int
+    dtype: np.dtype
+    chunk: int
+    filters: tuple[int, ...]
+    offsets: np.ndarray
+    sizes: np.ndarray
+    masks: np.ndarray
+    #: the last chunk read: (its number, its values)
+    _last: tuple[int, np.ndarray] | None = field(default=None, init=False, repr=False,
+                                                 compare=False)
 
     @classmethod
     def of(cls, ds: Any) -> StoredSamples | None:
