@@ -260,3 +260,28 @@ def test_a_layout_that_does_not_read_as_the_library_reads_is_not_used(tmp_path, 
     with open_capture(str(path)) as src:
         assert src._stored is None
         assert np.array_equal(np.concatenate([b.data for b in src.blocks(999)])[:, 0], x)
+
+
+def test_reads_by_position_call_no_hdf5_library(tmp_path, monkeypatch):
+    """What a forked worker does with the source (its blocks, and the exact levels pass that
+    names a bad sample) must not call into h5py: its handles are not to be used across a fork."""
+    from toothcomb.decoders.levels import measure_levels
+
+    x = RNG.normal(size=(50_000, 2))
+    path = tmp_path / "c.h5"
+    write_capture(path, x, 48_000.0, ["crank", "cam"])
+    with open_capture(str(path)) as src:
+        assert src._stored is not None
+
+        def refuse(*_a: object) -> None:
+            raise AssertionError("h5py was called")
+
+        for name in ("__getitem__", "chunks", "shape", "dtype", "id", "attrs", "file"):
+            monkeypatch.setattr(h5py.Dataset, name, property(refuse) if name != "__getitem__"
+                                else refuse)
+        monkeypatch.setattr(h5py.File, "__getitem__", refuse)
+        whole = np.concatenate([b.data for b in src.blocks(4096)])
+        later = np.concatenate([b.data for b in src.blocks_from(4096, start=8192, channels={0})])
+        levels = measure_levels(src, 4096)
+    assert np.array_equal(whole, x) and np.array_equal(later[:, 0], x[8192:, 0])
+    assert levels[0].n == 50_000 and levels[1].maximum == x[:, 1].max()

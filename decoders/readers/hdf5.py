@@ -460,6 +460,11 @@ class Hdf5Source(SourceBase):
         #: (:mod:`.h5chunks`), with a descriptor of the file's own; None: read through h5py
         self._stored: list[StoredSamples] | None = None
         self._fd = -1
+        # the first channel's storage chunk along the samples (0: not chunked), asked of h5py
+        # here once: a worker reading by position must not call the HDF5 library
+        ds = columns[0].dataset
+        axis = columns[0].index[0] if columns[0].index else 0
+        self._chunk = int(ds.chunks[axis]) if ds.chunks is not None else 0
         self._read_stored_layout()
         if self._stored is not None:
             self.blocks_from = self._blocks_from
@@ -494,14 +499,9 @@ class Hdf5Source(SourceBase):
         self._stored, self._fd = layouts, fd
 
     def _span(self, block_size: int) -> int:
-        ds = self._columns[0].dataset
-        chunk = 0
-        if ds.chunks is not None:
-            axis = self._columns[0].index[0] if self._columns[0].index else 0
-            chunk = ds.chunks[axis]
         span = max(block_size, READ_SPAN)
-        if chunk:
-            span = -(-span // chunk) * chunk
+        if self._chunk:
+            span = -(-span // self._chunk) * self._chunk
         return span
 
     def _read(self, start: int, stop: int, channels: Container[int] | None = None) -> np.ndarray:
