@@ -472,14 +472,16 @@ class Hdf5Source(SourceBase):
     def _read_stored_layout(self) -> None:
         if any(c.index is not None for c in self._columns):
             return
-        stored = [StoredSamples.of(c.dataset) for c in self._columns]
-        if any(s is None or s.n != self.info.n_samples for s in stored):
-            return
+        layouts = []
+        for c in self._columns:
+            s = StoredSamples.of(c.dataset)
+            if s is None or s.n != self.info.n_samples:
+                return
+            layouts.append(s)
         try:
             fd = os.open(self._file.filename, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
         except (OSError, TypeError, ValueError):
             return
-        layouts = [s for s in stored if s is not None]
         # the layout as the library reports it must give what h5py reads, at both ends (a
         # chunk, or as many samples of a contiguous dataset)
         n = self.info.n_samples
