@@ -435,10 +435,12 @@ def estimate_levels(
         return measure_levels(source, block_size, progress)
     lengths = {len(p) for p in parts}
     n = data.shape[0]
+    # integer samples (never a NaN, nor a -0.0 that a count would make +0.0)
+    pcm = info.subtype in INTEGER_SUBTYPES
     out = []
     for j, name in enumerate(info.channels):
         v = data[:, j]
-        coded = _coded(v)  # 8- and 16-bit samples: counts of codes instead of sorting
+        coded = _coded(v) if pcm else None  # 8- and 16-bit: codes counted instead of sorted
         # differences of neighbouring samples inside each window (none across a join), and
         # their median, worked out on a scratch copy of the channel's samples
         w = v if coded is None else coded[0]

@@ -154,7 +154,7 @@ def test_window_levels_of_pcm_codes_are_numpys_figures_to_the_bit(bits):
     flat = np.full(n, 7.0)
     clipped = np.clip(np.round(1.5 * top * np.sin(t / 17.0)), -top, top - 1)
     x = np.stack([hall, wave, flat, clipped], axis=1).astype(np.float64) * step
-    src = WindowSource(x)
+    src = WindowSource(x, subtype=f"PCM_{bits}" if bits == 16 else "PCM_S8")
     got = estimate_levels(src, 4096, sparse_above=100_000)
     w = np.concatenate([x[s : s + levels_mod.WINDOW] for s in window_starts(n)])
     n_windowed = len(w)
@@ -171,6 +171,19 @@ def test_window_levels_of_pcm_codes_are_numpys_figures_to_the_bit(bits):
     ends = np.count_nonzero(w[:, 3] == w[:, 3].min()) + np.count_nonzero(w[:, 3] == w[:, 3].max())
     assert got[3].clipped_fraction == ends / n_windowed > 0.1
     assert got[2].std == 0.0 and got[2].minimum == got[2].maximum == 7 * step
+
+
+def test_float_samples_are_sorted_even_on_the_code_grid():
+    """A float capture may hold -0.0, which counting codes would turn into +0.0: its windows
+    are sorted, and the figures keep numpy's signs."""
+    n = 600_000
+    x = np.where(np.arange(n) % 7 < 4, -0.0, 0.25)[:, None]
+    (lv,) = estimate_levels(WindowSource(x), 4096, sparse_above=100_000)
+    w = np.concatenate([x[s : s + levels_mod.WINDOW] for s in window_starts(n)])[:, 0]
+    # source: numpy.percentile and numpy.min of the same samples, signs included
+    expected = np.percentile(w, ChannelLevels.POINTS)
+    assert [math.copysign(1, p) for p in lv.percentiles] == np.copysign(1, expected).tolist()
+    assert math.copysign(1, lv.minimum) == math.copysign(1, float(w.min())) == -1.0
 
 
 def test_counted_percentiles_and_medians_are_numpys():
