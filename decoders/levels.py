@@ -408,7 +408,8 @@ def estimate_levels(
     ...     def __init__(self, x):
     ...         self.x = x
     ...         self.info = type("Info", (), {"n_samples": len(x), "n_channels": 1,
-    ...                                       "channels": ("crank",), "path": "memory"})
+    ...                                       "channels": ("crank",), "path": "memory",
+    ...                                       "subtype": "float64"})
     ...     def read_windows(self, starts, length):
     ...         for s in starts:
     ...             yield self.x[s : s + length]
