@@ -16,9 +16,10 @@ through h5py as before. The file format's byte layout is not parsed here: where 
 lies comes from the HDF5 library itself (``H5Dchunk_iter``, HDF5 1.14 and later); the filters
 are the HDF5 library's own definitions.
 
-# source: HDF5 User's Guide, "HDF5 Datasets", filters: H5Z_FILTER_DEFLATE = 1 (zlib's deflate
-# stream), H5Z_FILTER_SHUFFLE = 2 (byte k of every element stored together, k = 0 .. size-1);
-# a set bit i in a chunk's filter mask means filter i of the pipeline was skipped for it
+Source: the HDF5 User's Guide, "HDF5 Datasets" (filters): H5Z_FILTER_DEFLATE = 1 is zlib's
+deflate stream, H5Z_FILTER_SHUFFLE = 2 stores byte k of every element together (k = 0 .. size
+- 1), and a set bit i in a chunk's filter mask means filter i of the pipeline was skipped for
+that chunk.
 """
 
 from __future__ import annotations
@@ -127,27 +128,27 @@ class StoredSamples:
         c = self.chunk
         if c == 0:  # one contiguous piece: the stretch asked for, and no more
             item = self.dtype.itemsize
-            out[:] = self._bytes(fd, int(self.offsets[0]) + start * item, (stop - start) * item,
-                                 "its samples")
+            raw = self._stored(fd, int(self.offsets[0]) + start * item, (stop - start) * item,
+                               "its samples")
+            out[:] = np.frombuffer(raw, dtype=self.dtype)
             return
         for i in range(start // c, -(-stop // c)):
             lo, hi = max(start, i * c), min(stop, (i + 1) * c)
             values = self._chunk(fd, i)
             out[lo - start : hi - start] = values[lo - i * c : hi - i * c]
 
-    def _bytes(self, fd: int, offset: int, size: int, what: str) -> np.ndarray:
+    @staticmethod
+    def _stored(fd: int, offset: int, size: int, what: str) -> bytes:
         raw = read_at(fd, size, offset)
         if len(raw) != size:
             raise OSError(f"the file ends inside {what}")
-        return np.frombuffer(raw, dtype=self.dtype)
+        return raw
 
     def _chunk(self, fd: int, i: int) -> np.ndarray:
         if self._last is not None and self._last[0] == i:
             return self._last[1]
-        size = int(self.sizes[i])
-        raw = read_at(fd, size, int(self.offsets[i]))
-        if len(raw) != size:
-            raise OSError(f"the file ends inside chunk {i} of its samples")
+        raw = self._stored(fd, int(self.offsets[i]), int(self.sizes[i]),
+                           f"chunk {i} of its samples")
         mask = int(self.masks[i])
         item = self.dtype.itemsize
         data: bytes | np.ndarray = raw
