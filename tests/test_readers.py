@@ -67,6 +67,22 @@ def test_audio_matches_soundfile(
         assert all(np.isnan(info.full_scale))
 
 
+def test_float_audio_is_libsndfiles_float64_to_the_bit(tmp_path: Path) -> None:
+    """32-bit float samples are read as stored and widened by numpy: every bit as libsndfile's
+    own float64 read gives them, signed zeros, values beyond 1, subnormals and infinities too."""
+    odd = [0.0, -0.0, 1.5, -3.25, 1e-40, -1e-45, 3.4e38, -np.inf, np.inf, 0.1, 1 / 3]
+    x = np.concatenate([np.array(odd * 2).reshape(-1, 2), _signal(3001, 2, peak=4.0)])
+    path = tmp_path / "float.wav"
+    sf.write(path, x.astype(np.float32), 48000, subtype="FLOAT")
+    # source: python-soundfile / libsndfile, soundfile.read(dtype="float64") of a float file
+    expected, _ = sf.read(path, dtype="float64", always_2d=True)
+    with open_capture(str(path)) as src:
+        got = _all(src, 777)
+        later = np.concatenate([b.data for b in src.blocks_from(777, start=777 * 2)])
+    assert np.array_equal(got.view(np.uint64), expected.view(np.uint64))
+    assert np.array_equal(later.view(np.uint64), expected[777 * 2 :].view(np.uint64))
+
+
 def test_aiff_and_ogg_open(tmp_path: Path) -> None:
     x = _signal(2000, 2, 0.5)
     for name, fmt, subtype in (("a.aiff", "AIFF", "PCM_16"), ("a.ogg", "OGG", "VORBIS")):
