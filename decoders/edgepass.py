@@ -75,6 +75,7 @@ class EdgePass:
         self.fed = 0
         #: channels whose front ends are to go to a worker process (:meth:`hand_off`)
         self._to_worker: frozenset[int] = frozenset()
+        self._worker_min: int | None = None
         self._worker: _worker.FrontEndWorker | None = None
         #: the sample the worker took over at (None: no worker)
         self.worker_start: int | None = None
@@ -90,12 +91,13 @@ class EdgePass:
     def hand_off(self, channels: set[int], min_samples: int | None = None) -> None:
         """Run the front ends of ``channels`` in a worker process from the next block on
         (:mod:`toothcomb.decoders.worker`), when this process can fork one and at least
-        ``min_samples`` (default
-        :data:`~toothcomb.decoders.worker.MIN_SAMPLES`) samples are still to come; otherwise
-        nothing changes. The edges are the same either way. :meth:`release` and
-        :meth:`settled_s` are not available once a worker took over."""
+        ``min_samples`` (default :data:`~toothcomb.decoders.worker.MIN_SAMPLES`, or
+        :data:`~toothcomb.decoders.worker.MIN_SAMPLES_APART` for a source whose channels the
+        two processes read apart) samples are still to come; otherwise nothing changes. The
+        edges are the same either way. :meth:`release` and :meth:`settled_s` are not available
+        once a worker took over."""
         self._to_worker = frozenset(channels)
-        self._worker_min = _worker.MIN_SAMPLES if min_samples is None else min_samples
+        self._worker_min = min_samples
 
     def rejected(self, channel: int) -> dict[int, int]:
         """The pulses the front end of ``channel`` rejected, by direction (where it counts
@@ -113,10 +115,16 @@ class EdgePass:
         }
         self._to_worker = frozenset()
         n = self._source.info.n_samples
+        # a file that stores each channel apart: the worker reads its channels, this process
+        # the others, and each watches what it reads
+        apart = not by_codes and _worker.reads_apart(self._source)
+        least = self._worker_min
+        if least is None:
+            least = _worker.MIN_SAMPLES_APART if apart else _worker.MIN_SAMPLES
         if not (
             theirs
             and (scale or not by_codes)
-            and n - start >= self._worker_min
+            and n - start >= least
             and start % self._block_size == 0
             and _worker.starts_anywhere(self._source, codes=by_codes)
             and _worker.can_fork()
@@ -126,9 +134,6 @@ class EdgePass:
             before_fork = getattr(fe, "before_fork", None)
             if before_fork is not None:
                 before_fork(n - start)
-        # a file that stores each channel apart: the worker reads its channels, this process
-        # the others, and each watches what it reads
-        apart = not by_codes and _worker.reads_apart(self._source)
         try:
             self._worker = _worker.FrontEndWorker(
                 self._source, theirs, start, scale if by_codes else None, self._block_size,

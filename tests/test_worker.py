@@ -56,6 +56,7 @@ def forks(monkeypatch):
     PIDS.clear()
 
     monkeypatch.setattr(worker_mod, "MIN_SAMPLES", 0)
+    monkeypatch.setattr(worker_mod, "MIN_SAMPLES_APART", 0)
     monkeypatch.setattr(worker_mod.FrontEndWorker, "__init__", record)
     return made
 
@@ -399,6 +400,30 @@ def test_an_hdf5_decode_reads_only_the_channels_its_worker_does_not(tmp_path, fo
     assert set(reads[first:]) == {frozenset({1})}
     # the block the worker starts at is read whole here too; from the next one on, no crank
     assert len(reads) - first == -(-(7 * 48_000 - start - 4096) // 4096)
+    assert _no_child_left()
+
+
+def test_sources_read_apart_have_the_lower_threshold():
+    assert 0 < worker_mod.MIN_SAMPLES_APART < worker_mod.MIN_SAMPLES
+
+
+def test_a_source_read_apart_has_a_worker_from_fewer_samples(tmp_path, forks, monkeypatch):
+    """An HDF5 file's worker also takes half of the reading, so it pays on shorter captures:
+    the threshold of sources read apart applies to them alone."""
+    sc = _scenario("idle-60-2-vr-soundcard")
+    h5, _ = make_capture(tmp_path, sc, "h5")
+    sim = simulate(preset("idle-60-2-vr-soundcard", duration_s=7.0).replace(
+        instrument=Instrument(kind="float", sample_rate=48_000.0)))
+    wav = tmp_path / "float.wav"
+    sf.write(wav, sim.samples / (2 * float(np.max(np.abs(sim.samples)))), 48_000,
+             subtype="FLOAT")
+    monkeypatch.setattr(worker_mod, "MIN_SAMPLES", 10**12)
+    decode_capture(str(h5), DecodeOptions(block_size=4096))
+    decode_capture(str(wav), DecodeOptions(block_size=4096))
+    assert [channels for channels, _ in forks] == [(0,)]  # the HDF5 file's only
+    monkeypatch.setattr(worker_mod, "MIN_SAMPLES_APART", 10**12)
+    decode_capture(str(h5), DecodeOptions(block_size=4096))
+    assert len(forks) == 1
     assert _no_child_left()
 
 
