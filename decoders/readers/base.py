@@ -293,6 +293,15 @@ class SourceBase:
         if self._closed:
             raise CaptureError(f"{self.info.path} was closed; open it again with open_capture()")
 
+    def _block_starts(self, block_size: int, start: int) -> range:
+        """The first sample of each block a pass from ``start`` gives (``start`` a block
+        boundary, or the end), once the size, the start and the source are checked: what a
+        reader that reads by position goes through in ``blocks_from``."""
+        size = check_block_size(block_size)
+        self._check_open()
+        check_block_start(start, size, self.info.n_samples)
+        return range(start, self.info.n_samples, size)
+
     def close(self) -> None:
         """Release the file. Calling it again does nothing."""
         if not self._closed:

@@ -39,8 +39,6 @@ from .base import (
     NotIncreasing,
     RegularClock,
     SourceBase,
-    check_block_size,
-    check_block_start,
     check_channel_count,
     check_file,
     check_sample_rate,
@@ -553,12 +551,10 @@ class Hdf5Source(SourceBase):
         ``block_size``, or the end), read by position without the HDF5 library: a worker
         process can read them beside this one. ``channels``: read only these (the others'
         columns hold zeros)."""
-        size = check_block_size(block_size)
-        self._check_open()
         n = self.info.n_samples
-        check_block_start(start, size, n)
-        for at in range(start, n, size):
-            yield Block(at, self._read_checked(at, min(n, at + size), channels))
+        starts = self._block_starts(block_size, start)
+        for at in starts:
+            yield Block(at, self._read_checked(at, min(n, at + starts.step), channels))
 
     def read_windows(self, starts: Iterable[int], length: int) -> Iterator[np.ndarray]:
         """``length`` samples from each of ``starts`` (fewer at the end), as float64 (samples,

@@ -60,8 +60,6 @@ from .base import (
     NotIncreasing,
     RegularClock,
     SourceBase,
-    check_block_size,
-    check_block_start,
     check_file,
     check_sample_rate,
     number_resolution,
@@ -1649,13 +1647,10 @@ class CsvSource(SourceBase):
         """The samples as :meth:`blocks` gives them, from ``start`` on (a multiple of
         ``block_size``, or the end), read from the spool (by position: a worker process can
         read it beside this one)."""
-        size = check_block_size(block_size)
-        self._check_open()
         assert self._spool is not None
-        n = self.info.n_samples
-        check_block_start(start, size, n)
-        for at in range(start, n, size):
-            yield Block(at, self._spool.read(at, size))
+        starts = self._block_starts(block_size, start)
+        for at in starts:
+            yield Block(at, self._spool.read(at, starts.step))
 
     def _pieces(self, block_size: int) -> Iterator[np.ndarray]:
         spool = self._spool
