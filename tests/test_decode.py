@@ -6,7 +6,7 @@ import json
 
 import numpy as np
 import pytest
-from conftest import cam_errors, event_errors, make_capture, reference_errors
+from conftest import cam_errors, event_errors, make_capture, reference_errors, truth_edges
 from toothcomb.decoders.errors import DecodeError, SignalError, UsageError
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
@@ -252,3 +252,30 @@ def test_a_wrong_wheel_hint_is_refused(tmp_path, name):
     # the right hint decodes with no tooth out of place
     r = decode_capture(str(path), DecodeOptions(wheel="60-2"))
     assert r.crank.extra_teeth + r.crank.missing_teeth <= 2
+
+
+@pytest.mark.parametrize("sensor", ["vr", "hall"])
+@pytest.mark.parametrize("start_deg", [75.0, 85.0, 92.0])
+def test_a_capture_starting_at_the_gap_keeps_its_first_reference(tmp_path, start_deg, sensor):
+    """The capture starts a tooth before the gap (75 deg: the last tooth at 78) or inside it
+    (85, 92 deg: tooth 1 at 96), so no interval across that gap is in it. Tooth 1 after it is
+    still the capture's first reference event, counted back a revolution from the next gap, and
+    the cam edges of that first revolution get their angles."""
+    crank = CrankWheel(
+        wheel="60-2", tooth1_deg=96.0,
+        sensor=VrSensor(peak_v_at_200rpm=0.4) if sensor == "vr" else HallSensor(),
+    )
+    path, truth = make_capture(tmp_path, idle_48k(start_angle_deg=start_deg, crank=crank))
+    r = decode_capture(str(path))
+    true_refs = truth["crank"]["reference_times_s"]
+    # the scenario does what it says: 60-2 at 800 rpm, at most 21 deg of crank before tooth 1
+    # (source: crank deg/s = rpm * 6)
+    assert 0.0 < true_refs[0] < 21.0 / (6 * 800.0) * 1.1
+    found, errs = reference_errors(r, truth)
+    assert found == len(true_refs) == len(r.crank.reference_times_s)
+    assert np.max(errs) < 0.3
+    assert r.crank.sync_losses == 0
+    # every true cam event after the first reference event is located
+    want = sum(len(pts) for pts in truth_edges(truth).values())
+    assert sum(e.angle.n for e in r.cams[0].edges) == want
+    assert max(cam_errors(r, truth).values()) < 0.1

@@ -153,9 +153,11 @@ def test_constant_speed_decode_gives_every_tooth_its_angle():
     spec = PatternWheel.parse("twin-gap-60")
     t = wheel_times(spec, 5, 1200.0)
     track = decode_pattern(t, spec)
-    # every tooth 1 is found once sync is made: the first needs the window before it
+    # every tooth 1 is found: the first, with nothing before it to sync on, is counted back
+    # from the second
     assert track.sync_losses == 0 and track.extra == 0 and track.missing == 0
-    assert len(track.reference_times) == 5
+    assert track.reference_times.tolist() == t[:: spec.teeth].tolist()
+    assert len(track.reference_times) == 6
     # source: at constant speed, angle = rpm * 6 * t (deg/s = rpm * 360 / 60)
     want = (track.times - track.reference_times[0]) * 1200.0 * 6.0
     assert np.max(np.abs(track.angles - want)) < 1e-6
@@ -185,18 +187,24 @@ def test_a_missing_tooth_event_is_counted_through():
     t = np.delete(t, 70)  # one tooth event of revolution 3 lost
     track = decode_pattern(t, spec)
     assert track.missing == 1 and track.sync_losses == 0
-    assert len(track.reference_times) == 6
+    # the 7 tooth-1 events of 6 revolutions and the closing one, the first counted back
+    assert len(track.reference_times) == 7 and track.reference_times[0] == t[0]
 
 
 # -- end to end: simulated captures --------------------------------------------------------------
 
 
-def window_references(truth: dict, window: int) -> np.ndarray:
-    """True tooth-1 events with ``window`` teeth before them and two after in the capture."""
+def window_references(truth: dict, spec: PatternSpec) -> np.ndarray:
+    """True tooth-1 events with ``spec.window`` teeth before them and two after in the capture,
+    and the capture's first one when its whole revolution and the next sync are there too (it
+    is counted back from the next tooth 1)."""
     centres = np.asarray(truth["crank"]["tooth_events"]["centre_s"])
     refs = np.asarray(truth["crank"]["reference_times_s"])
     before = np.searchsorted(centres, refs - 1e-7)
-    return refs[(before >= window) & (len(centres) - before >= 3)]
+    after = len(centres) - before
+    found = (before >= spec.window) & (after >= 3)
+    found[:1] |= after[:1] >= spec.teeth + 3
+    return refs[found]
 
 
 CASES = [
@@ -227,7 +235,7 @@ def test_library_wheels_are_identified_and_followed(tmp_path, wheel, sensor, spe
     assert r.crank.wheel == wheel, r.choices.get("wheel")
     assert "library wheel" in r.choices["wheel"]
     assert r.crank.sync_losses == 0 and r.crank.extra_teeth == 0 and r.crank.missing_teeth == 0
-    want = window_references(truth, spec.window)
+    want = window_references(truth, spec)
     got = np.asarray(r.crank.reference_times_s)
     assert len(want) >= 2 and len(got) == len(want)
     rpm = local_rpm(truth, want)
@@ -282,7 +290,7 @@ def test_library_wheels_under_harsh_conditions(tmp_path, wheel, condition):
     r, truth = decode(tmp_path, engine(wheel=wheel, duration_s=2.0, **kw))
     spec = PatternWheel.parse(wheel)
     assert r.crank.wheel == wheel and r.crank.sync_losses == 0
-    want = window_references(truth, spec.window)
+    want = window_references(truth, spec)
     got = np.asarray(r.crank.reference_times_s)
     assert len(want) >= 4 and len(got) == len(want)
     assert np.max(np.abs(got - want) * 6.0 * local_rpm(truth, want)) < 1.0

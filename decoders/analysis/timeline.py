@@ -101,7 +101,7 @@ class CrankTimeline:
     """Crank angle as a function of time, from a whole :class:`ToothTrack`.
 
     >>> from toothcomb.decoders.wheels.missing_tooth import MissingToothSpec, decode_teeth
-    >>> t = np.array([r * 360 + k * 10.0 for r in range(3) for k in range(35)]) / 9000.0
+    >>> t = np.array([r * 360 + k * 10.0 for r in range(3) for k in range(35)])[5:] / 9000.0
     >>> tl = CrankTimeline(decode_teeth(t, MissingToothSpec(36, 1)), max_pitches=2)
     >>> look = tl.angle_at(np.array([400.0 / 9000.0, 0.001]))
     >>> look.angle.round(6).tolist(), look.run.tolist()     # 0.001 s is before the first reference

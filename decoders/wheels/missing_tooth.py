@@ -10,6 +10,11 @@ periods; the cheapest explanation wins among "next tooth", "next tooth after n m
 (dropout, damaged tooth) and "this edge is not a tooth" (runt pulse, spike). When nothing
 explains an interval, sync is lost, counted, reported, and found again at the next gap.
 
+A capture that starts inside the gap (or one tooth before it) shows no interval across that gap,
+so the first gap found is the next one, a revolution later. The revolution before it is then
+counted back from that gap: when the capture holds all of its teeth, evenly spaced, its tooth 1
+is the capture's first reference event and the sync run starts there.
+
 Sources for the geometry: an N-M wheel has a pitch of 360/N deg and the interval across its gap
 spans M + 1 pitches (60-2: 6 deg pitch, 18 deg across the gap) -- see e.g. Robert Bosch GmbH,
 *Automotive Handbook*, engine management / speed sensors.
@@ -450,7 +455,7 @@ def decode_teeth(times: np.ndarray, spec: MissingToothSpec) -> ToothTrack:
     >>> t = np.array([r * 360 + k * 10.0 for r in range(3) for k in range(35)]) / 9000.0
     >>> track = decode_teeth(t, w)
     >>> len(track.reference_times), track.sync_losses, track.angles[:3].tolist()
-    (2, 0, [0.0, 10.0, 20.0])
+    (3, 0, [0.0, 10.0, 20.0])
     """
     tracker = ToothTracker(spec)
     return ToothTrack.concat([tracker.feed(times), tracker.finish()], spec.pitch_deg)
@@ -537,8 +542,10 @@ class ToothTracker:
                 continue
             i = out.last_i
 
-        # keep what later decisions may look back to (a gap is judged with t[g - 1])
-        drop = max(0, min(i, n) - self._behind)
+        # keep what later decisions may look back to (a gap is judged with t[g - 1]); before
+        # the first sync, a revolution more (see _backfill)
+        behind = self._behind if self._run >= 0 else max(self._behind, K + 1)
+        drop = max(0, min(i, n) - behind)
         self._t = t[drop:]
         self._i = i - drop
         track = out.track(spec.pitch_deg, self)
@@ -591,9 +598,43 @@ class ToothTracker:
                     float(t[g]),
                 )
             )
-        out.tooth(t[i], 0.0, self._run, 1, 0)
+        pitches = self._backfill(t, i, out) if not runt else 0
+        out.tooth(t[i], self._angle, self._run, 1, pitches)
         out.refs.append(float(t[i]))
         return i, True
+
+    def _backfill(self, t: np.ndarray, i: int, out: _Out) -> int:
+        """At the first sync, on tooth 1 at ``t[i]``: when the ``K`` events before it are the
+        whole revolution before (teeth 1 to K, every pitch period within 25 % of the one before
+        it, the gap's counted as its pitches), emit them as the run's first revolution from its
+        tooth 1 (a reference event) and move the run on by 360 deg; returns the pitches from
+        tooth K to tooth 1 (0 when nothing was emitted: later runs, too few events, uneven
+        periods).
+
+        Mostly the capture started too close to that earlier tooth 1 for its gap to be seen
+        (inside the gap, or one tooth before it); the same holds when that gap was there but
+        not recognised.
+        """
+        spec = self.spec
+        K = spec.teeth
+        if self._run != 0 or i < K:
+            return 0
+        steps = np.asarray(spec.steps, dtype=float)
+        T = np.diff(t[i - K : i + 1])
+        if not np.all(T > 0):
+            return 0
+        q = T / steps
+        if not np.all(np.abs(np.log(q[1:] / q[:-1])) < 0.25):
+            return 0
+        angles = np.concatenate(([0.0], np.cumsum(steps[:-1]))) * spec.pitch_deg
+        teeth = np.arange(1, K + 1)
+        pitches = np.concatenate(([0.0], steps[:-1]))
+        out.teeth(t[i - K : i], angles, self._run, teeth, pitches)
+        out.refs.append(float(t[i - K]))
+        self._angle = 360.0
+        shift = 360.0 / spec.pitch_deg
+        self._hist = [(a + shift, b + shift, d) for a, b, d in self._hist]
+        return int(steps[-1])
 
     def _clean_revolutions(self, t: np.ndarray, i: int, available: int, out: _Out) -> int:
         """Take the whole revolutions that follow tooth 1 at ``t[i]`` while each is clean:

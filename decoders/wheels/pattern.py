@@ -252,7 +252,8 @@ class PatternTracker(ToothTracker):
         x1 = -float(s[K - 1])
         x2 = x1 - float(s[K - 2])
         self._hist = [(x2, x1, float(t[i - 1] - t[i - 2])), (x1, 0.0, float(t[i] - t[i - 1]))]
-        out.tooth(t[i], 0.0, self._run, 1, 0)
+        pitches = self._backfill(t, i, out)
+        out.tooth(t[i], self._angle, self._run, 1, pitches)
         out.refs.append(float(t[i]))
         return i, True
 
@@ -264,7 +265,7 @@ def decode_pattern(times: np.ndarray, spec: PatternSpec) -> ToothTrack:
     >>> t = np.concatenate(([0.0], np.cumsum(np.tile(w.steps, 3)))) * 0.01
     >>> tr = decode_pattern(t, w)
     >>> tr.reference_times.round(2).tolist(), tr.angles[:6].tolist(), tr.sync_losses
-    ([0.12, 0.24, 0.36], [0.0, 30.0, 60.0, 90.0, 120.0, 210.0], 0)
+    ([0.0, 0.12, 0.24, 0.36], [0.0, 30.0, 60.0, 90.0, 120.0, 210.0], 0)
     """
     tracker = PatternTracker(spec)
     return ToothTrack.concat([tracker.feed(times), tracker.finish()], spec.pitch_deg)
