@@ -32,6 +32,7 @@ from conftest import (
 from toothcomb.decoders.errors import DecodeError
 from toothcomb.decoders.options import DecodeOptions
 from toothcomb.decoders.pipeline import decode_capture
+from toothcomb.decoders.readers.write import write_capture
 from toothcomb.decoders.result import DecodeResult
 from toothcomb.decoders.simulate import (
     Cam,
@@ -460,6 +461,33 @@ def test_ignition_spikes(tmp_path, sensor, speed, amplitude, tau_us, one_window,
     # a spike that got through as a crank edge is reported, not silently counted as a tooth
     if r.crank.extra_teeth:
         assert "extra-edge" in finding_codes(r)
+
+
+def test_one_sample_spikes_leave_a_weak_vr_tooth_armed(tmp_path):
+    """Spikes one sample long, as tall as the VR swing or taller and of either sign, 100 a
+    second (interference recorded with no anti-alias filter in its way). They are broadband:
+    the noise floor, measured with them, would arm above a weak tooth. Tooth 12 at half the
+    flux swing is seen in every revolution and the wheel is identified without hints."""
+    sc = engine(
+        wheel="36-1",
+        duration_s=1.5,
+        damaged=(DamagedTooth(tooth=12, kind="weak", amplitude=0.5),),
+        crank_channel=Channel(name="crank", source="crank", gain=0.12, noise_v=0.003),
+        instrument=Instrument(kind="soundcard", sample_rate=48_000.0, bits=24, ac_corner_hz=10.0),
+    )
+    sim = simulate(sc)
+    x = sim.samples.copy()
+    crank = x[:, sim.channels.index("crank")]
+    swing = float(np.percentile(crank, 99) - np.percentile(crank, 1))
+    rng = np.random.default_rng(5)
+    at = rng.choice(len(x), int(100 * sim.duration_s), replace=False)
+    crank[at] += rng.choice([-1.0, 1.0], len(at)) * rng.uniform(0.5, 1.5, len(at)) * swing
+    np.clip(x, -1.0, 1.0 - 2.0**-23, out=x)
+    path = tmp_path / "spiky.flac"
+    write_capture(path, x, sim.sample_rate, sim.channels, subtype="PCM_24")
+    r = decode_capture(str(path))
+    check_crank(r, sim.truth, ref_tol=1.0)
+    assert r.crank.missing_teeth == 0 and r.crank.sync_losses == 0
 
 
 @pytest.mark.parametrize(

@@ -156,7 +156,15 @@ class VrFrontEnd(SampleFeed):
         if len(edges) >= 4 and has_spikes(y, spike):
             # a running median removes ignition spikes; it must be short against a half-wave
             half_wave = float(np.percentile(np.diff(edges.times), 10)) * sample_rate
-            opts["despike"] = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
+            size = 5 if half_wave >= 12 else 3 if half_wave >= 6 else 1
+            opts["despike"] = size
+            if size > 1:
+                # spikes are broadband: measured with them, the noise floor (and the starting
+                # envelope, when one falls in the first samples) would arm above weak teeth
+                clean = despike(y, size)
+                opts["envelope"] = float(np.max(np.abs(clean[: len(head)])))
+                noise = spectral_noise(clean)
+                opts["floor"] = max(4.0 * noise, 3.0 * quantisation_step(probe), 1e-12)
         return opts
 
     def _carry(self) -> np.ndarray:
