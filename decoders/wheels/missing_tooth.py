@@ -49,6 +49,10 @@ ACCEPT_LOG = math.log(1.45)
 #: an edge is only considered "not a tooth" when taking it as one misfits by more than this
 # common practice, no source: about 30 %, beyond what speed changes give from tooth to tooth
 SKIP_ONLY_ABOVE = math.log(1.3)
+#: largest |log| of the ratio of one pitch period to the one before it in a revolution taken
+#: whole (the fast path, and the revolution counted back at the first sync)
+# common practice, no source: about +-25 %, beyond what cranking swings give from tooth to tooth
+EVEN_LOG = 0.25
 #: accepted intervals the speed prediction is fitted to
 HISTORY = 3
 #: cost added for calling an edge "not a tooth" or a tooth "missing" (log units)
@@ -624,7 +628,7 @@ class ToothTracker:
         if not np.all(T > 0):
             return 0
         q = T / steps
-        if not np.all(np.abs(np.log(q[1:] / q[:-1])) < 0.25):
+        if not np.all(_even(q)):
             return 0
         angles = np.concatenate(([0.0], np.cumsum(steps[:-1]))) * spec.pitch_deg
         teeth = np.arange(1, K + 1)
@@ -649,11 +653,11 @@ class ToothTracker:
         steps = np.asarray(spec.steps, dtype=float)
         T = np.diff(t[i : i + available * K + 1])
         q = T / np.tile(steps, available)
-        if not abs(math.log(q[0] / self._p_last)) < 0.25:
+        if not abs(math.log(q[0] / self._p_last)) < EVEN_LOG:
             return 0
         # the first period of each revolution is compared with the last one of the revolution
         # before, as the one-revolution check compares it with the speed prediction
-        ok = np.concatenate(([True], np.abs(np.log(q[1:] / q[:-1])) < 0.25))
+        ok = np.concatenate(([True], _even(q)))
         clean = ok.reshape(available, K).all(axis=1)
         revs = available if clean.all() else int(np.argmin(clean))
         if revs == 0:
@@ -780,6 +784,16 @@ class ToothTracker:
             out.refs.append(float(t[i]))
         out.last_i = i
         return True
+
+
+def _even(q: np.ndarray) -> np.ndarray:
+    """For pitch periods ``q``: whether each after the first is within :data:`EVEN_LOG` of the
+    one before it.
+
+    >>> _even(np.array([1.0, 1.1, 1.5, 1.4])).tolist()
+    [True, False, True]
+    """
+    return np.abs(np.log(q[1:] / q[:-1])) < EVEN_LOG
 
 
 def split_gaps(t: np.ndarray, lo: int, hi: int, missing: int) -> np.ndarray:
