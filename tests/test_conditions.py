@@ -598,6 +598,23 @@ def test_damaged_tooth(tmp_path, sensor, kind):
         assert r.crank.sync_losses == 0
 
 
+def test_weak_tooth_on_a_one_gap_wheel_is_seen_every_revolution(tmp_path):
+    """Tooth 12 of a 36-1 wheel with 40 % of the flux swing: its own half-waves come out at
+    about a quarter of its neighbours' (their flanks overlap it). Were it missed, every
+    revolution would show two intervals of two pitches, the gap's and the missed tooth's, and
+    no wheel could be told from them: it must arm, and the wheel is identified without hints."""
+    sc = engine(
+        wheel="36-1",
+        duration_s=1.5,
+        damaged=(DamagedTooth(tooth=12, kind="weak", amplitude=0.4),),
+        crank_channel=Channel(name="crank", source="crank", gain=0.12, noise_v=0.003),
+        instrument=Instrument(kind="soundcard", sample_rate=48_000.0, bits=24, ac_corner_hz=10.0),
+    )
+    r, truth = decode(tmp_path, sc, fmt="flac")
+    check_crank(r, truth, ref_tol=0.3)
+    assert r.crank.missing_teeth == 0 and r.crank.extra_teeth == 0 and r.crank.sync_losses == 0
+
+
 @pytest.mark.parametrize(
     "sensor,runt,visible",
     [

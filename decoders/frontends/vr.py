@@ -62,7 +62,7 @@ class VrFrontEnd(SampleFeed):
         *,
         offset: float | None = None,
         floor: float | None = None,
-        fraction: float = 0.3,
+        fraction: float = 0.2,
         envelope: float | None = None,
         decay: float = 0.8,
         despike: int = 1,
@@ -74,6 +74,11 @@ class VrFrontEnd(SampleFeed):
         # noise from re-triggering (calibrate() measures the noise far better than this)
         self.floor = float(floor) if floor is not None else max(5.0 * levels.noise, 1e-12)
         #: arming threshold as a fraction of the envelope
+        # common practice, no source: a weak tooth's half-waves come out smaller than its flux
+        # swing, as its neighbours' flanks overlap them (a quarter of theirs at 40 % of the
+        # flux, simulated); 0.2 still arms on them, and the noise floor, not this fraction,
+        # keeps noise out. Missed every revolution on an N-1 wheel, such a tooth would make a
+        # second gap and leave the wheel unidentifiable.
         self.fraction = float(fraction)
         half_span = 0.5 * (levels.percentile(99.9) - levels.percentile(0.1))
         self.envelope = float(envelope) if envelope is not None else max(half_span, self.floor)
