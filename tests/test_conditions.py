@@ -463,6 +463,32 @@ def test_ignition_spikes(tmp_path, sensor, speed, amplitude, tau_us, one_window,
         assert "extra-edge" in finding_codes(r)
 
 
+def test_clamped_vr_whose_teeth_a_two_level_reading_misses(tmp_path):
+    """A VR crank at 192 kHz, clamped (tanh) into near-square teeth whose flanks are sharp
+    enough to pass for a Hall output's, with taller, longer lobes across the gap. A two-level
+    reading follows only the gap's lobes; the signal swings through its middle at every tooth,
+    so it is a VR sensor, and its 60-2 wheel decodes. Made with numpy: the simulator's clamped
+    VR waveforms are told apart by their gap swing already."""
+    fs, period, revs = 192_000.0, 33, 40
+    ph = 2 * np.pi * np.arange(period) / period
+    tooth = np.sin(ph + 0.9 * np.sin(ph))  # skewed: a steeper fall than rise
+    half = period  # the gap spans 3 pitches: a long negative lobe, then a long positive one
+    lobes = np.r_[-3.0 * np.sin(np.pi * np.arange(half) / half),
+                  3.0 * np.sin(np.pi * np.arange(period * 2 - half) / (period * 2 - half))]
+    x = np.tile(np.r_[np.tile(tooth, 58), lobes], revs)
+    x = 0.65 * np.tanh(4.0 * x) / np.tanh(4.0)
+    x += np.random.default_rng(0).normal(0.0, 0.003, len(x))
+    path = tmp_path / "clamped.flac"
+    write_capture(path, x[:, None], fs, ["crank"], subtype="PCM_24")
+    r = decode_capture(str(path))
+    assert (r.crank.sensor, r.crank.wheel, r.crank.sync_losses) == ("vr", "60-2", 0)
+    assert "clamped VR" in r.choices["crank_sensor"]
+    # source: by construction, one revolution is 60 pitches of 33 samples
+    refs = np.asarray(r.crank.reference_times_s)
+    assert len(refs) >= revs - 1
+    assert np.allclose(np.diff(refs), 60 * period / fs, rtol=1e-3)
+
+
 def test_one_sample_spikes_leave_a_weak_vr_tooth_armed(tmp_path):
     """Spikes one sample long, as tall as the VR swing or taller and of either sign, 100 a
     second (interference recorded with no anti-alias filter in its way). They are broadband:

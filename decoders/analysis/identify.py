@@ -33,6 +33,15 @@ from ..wheels.missing_tooth import looks_like_clipped_vr
 SHARP_HALL = 0.55
 #: sharpness span (s)
 SHARP_SPAN_S = 10e-6
+#: swings through the middle level per step of the two-level reading above which the reading
+#: misses most of them (and how many swings that takes at least)
+# common practice, no source: the Hall channels of the test and independently made captures give
+# 0.9-1.05 (each flank crosses the middle once), a clamped VR crank whose teeth a two-level
+# reading did not follow gave 58
+SWINGS_PER_STEP = 3.0
+MIN_SWINGS = 20
+#: samples of the probe the swings are counted over
+SWING_SAMPLES = 1 << 17
 # source: for white Gaussian noise the 0.1th and 99.9th percentiles lie at -/+3.09 sigma
 # (standard normal quantile), a span of 6.18 sigma; below about 10 sigma a channel is noise.
 NOISE_SPAN_SIGMAS = 10.0
@@ -126,6 +135,34 @@ def _sharpness(probe: np.ndarray, edges: Edges, sample_rate: float) -> float:
     return float(np.median(vals / edges.strength))
 
 
+def _misses_swings(
+    probe: np.ndarray, levels: ChannelLevels, edges: Edges, sample_rate: float
+) -> bool:
+    """True when ``probe`` swings through the middle of its levels (the mean +- a tenth of the
+    span, crossed as a Schmitt trigger would) far more often than ``edges``, a two-level
+    reading of it, has steps: the reading follows only some of the swings (a clamped VR
+    signal's big ones), not a two-level signal. Counted over the first
+    :data:`SWING_SAMPLES` samples.
+
+    >>> from toothcomb.decoders.model import ChannelLevels
+    >>> x = np.sin(np.arange(20000) / 10.0)
+    >>> lv = ChannelLevels("ch0", 20000, -1, 1, 0, 0.7, (-1, -1, -1, -.7, 0, .7, 1, 1, 1), 1e-3, 0)
+    >>> few = Edges(np.array([0.01, 0.02]), np.array([1, -1]), np.array([2.0, 2.0]))
+    >>> _misses_swings(x, lv, few, 1000.0)                  # 636 swings against 2 steps
+    True
+    """
+    n = min(len(probe), SWING_SAMPLES)
+    x = probe[:n]
+    band = 0.1 * levels.span
+    side = np.zeros(n, dtype=np.int8)
+    side[x > levels.mean + band] = 1
+    side[x < levels.mean - band] = -1
+    side = side[side != 0]
+    swings = int(np.count_nonzero(side[1:] != side[:-1]))
+    steps = int(np.count_nonzero(edges.times < n / sample_rate))
+    return swings >= MIN_SWINGS and swings > SWINGS_PER_STEP * steps
+
+
 def look_at_channel(
     probe: np.ndarray, sample_rate: float, levels: ChannelLevels, hint: str | None = None
 ) -> ChannelLook:
@@ -171,6 +208,12 @@ def look_at_channel(
             why = (
                 "its steps are sharp, but it swings across the wheel gap as a VR voltage "
                 "does: a clipped VR sensor"
+            )
+        elif sharp >= SHARP_HALL and _misses_swings(probe, levels, edges, sample_rate):
+            kind, conf = "vr", 0.7
+            why = (
+                "its steps are sharp, but it swings through its middle level far more often "
+                "than a two-level reading finds steps: a clamped VR sensor"
             )
         elif sharp >= SHARP_HALL:
             kind = "hall"
