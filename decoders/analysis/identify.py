@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 
-from ..frontends.base import PERIODOGRAM_SAMPLES, Periodogram, periodogram
+from ..frontends.base import PERIODOGRAM_SAMPLES, Periodogram, despike, periodogram
 from ..frontends.hall import HallFrontEnd
 from ..model import ChannelLevels, Edges
 from ..wheels.missing_tooth import looks_like_clipped_vr
@@ -142,7 +142,7 @@ def _misses_swings(
     span, crossed as a Schmitt trigger would) far more often than ``edges``, a two-level
     reading of it, has steps: the reading follows only some of the swings (a clamped VR
     signal's big ones), not a two-level signal. Counted over the first
-    :data:`SWING_SAMPLES` samples.
+    :data:`SWING_SAMPLES` samples, with spikes of one or two samples removed.
 
     >>> from toothcomb.decoders.model import ChannelLevels
     >>> x = np.sin(np.arange(20000) / 10.0)
@@ -150,9 +150,14 @@ def _misses_swings(
     >>> few = Edges(np.array([0.01, 0.02]), np.array([1, -1]), np.array([2.0, 2.0]))
     >>> _misses_swings(x, lv, few, 1000.0)                  # 636 swings against 2 steps
     True
+    >>> square = np.where(np.arange(20000) // 5000 % 2, 1.0, -1.0)
+    >>> square[100::400] = 3.0                              # spikes, 25 from the low level
+    >>> steps = Edges(np.array([5.0, 10.0, 15.0]), np.array([1, -1, 1]), np.full(3, 2.0))
+    >>> _misses_swings(square, lv, steps, 1000.0)
+    False
     """
     n = min(len(probe), SWING_SAMPLES)
-    x = probe[:n]
+    x = despike(probe[:n], 5)  # an ignition spike is not a swing
     band = 0.1 * levels.span
     side = np.zeros(n, dtype=np.int8)
     side[x > levels.mean + band] = 1
