@@ -489,19 +489,24 @@ def test_clamped_vr_whose_teeth_a_two_level_reading_misses(tmp_path):
     assert np.allclose(np.diff(refs), 60 * period / fs, rtol=1e-3)
 
 
+def weak_tooth_36_1(flux: float) -> Scenario:
+    """A 36-1 VR crank at 1500 rpm whose tooth 12 has ``flux`` of the flux swing, on a 48 kHz,
+    24-bit sound card."""
+    return engine(
+        wheel="36-1",
+        duration_s=1.5,
+        damaged=(DamagedTooth(tooth=12, kind="weak", amplitude=flux),),
+        crank_channel=Channel(name="crank", source="crank", gain=0.12, noise_v=0.003),
+        instrument=Instrument(kind="soundcard", sample_rate=48_000.0, bits=24, ac_corner_hz=10.0),
+    )
+
+
 def test_one_sample_spikes_leave_a_weak_vr_tooth_armed(tmp_path):
     """Spikes one sample long, as tall as the VR swing or taller and of either sign, 100 a
     second (interference recorded with no anti-alias filter in its way). They are broadband:
     the noise floor, measured with them, would arm above a weak tooth. Tooth 12 at half the
     flux swing is seen in every revolution and the wheel is identified without hints."""
-    sc = engine(
-        wheel="36-1",
-        duration_s=1.5,
-        damaged=(DamagedTooth(tooth=12, kind="weak", amplitude=0.5),),
-        crank_channel=Channel(name="crank", source="crank", gain=0.12, noise_v=0.003),
-        instrument=Instrument(kind="soundcard", sample_rate=48_000.0, bits=24, ac_corner_hz=10.0),
-    )
-    sim = simulate(sc)
+    sim = simulate(weak_tooth_36_1(0.5))
     x = sim.samples.copy()
     crank = x[:, sim.channels.index("crank")]
     swing = float(np.percentile(crank, 99) - np.percentile(crank, 1))
@@ -629,14 +634,7 @@ def test_weak_tooth_on_a_one_gap_wheel_is_seen_every_revolution(tmp_path):
     about a quarter of its neighbours' (their flanks overlap it). Were it missed, every
     revolution would show two intervals of two pitches, the gap's and the missed tooth's, and
     no wheel could be told from them: it must arm, and the wheel is identified without hints."""
-    sc = engine(
-        wheel="36-1",
-        duration_s=1.5,
-        damaged=(DamagedTooth(tooth=12, kind="weak", amplitude=0.4),),
-        crank_channel=Channel(name="crank", source="crank", gain=0.12, noise_v=0.003),
-        instrument=Instrument(kind="soundcard", sample_rate=48_000.0, bits=24, ac_corner_hz=10.0),
-    )
-    r, truth = decode(tmp_path, sc, fmt="flac")
+    r, truth = decode(tmp_path, weak_tooth_36_1(0.4), fmt="flac")
     check_crank(r, truth, ref_tol=0.3)
     assert r.crank.missing_teeth == 0 and r.crank.extra_teeth == 0 and r.crank.sync_losses == 0
 
