@@ -472,9 +472,10 @@ def test_clamped_vr_whose_teeth_a_two_level_reading_misses(tmp_path):
     fs, period, revs = 192_000.0, 33, 40
     ph = 2 * np.pi * np.arange(period) / period
     tooth = np.sin(ph + 0.9 * np.sin(ph))  # skewed: a steeper fall than rise
-    half = period  # the gap spans 3 pitches: a long negative lobe, then a long positive one
-    lobes = np.r_[-3.0 * np.sin(np.pi * np.arange(half) / half),
-                  3.0 * np.sin(np.pi * np.arange(period * 2 - half) / (period * 2 - half))]
+    # the two missing teeth's pitches (3 from the last tooth to tooth 1): a tall negative
+    # lobe, then a tall positive one
+    lobe = 3.0 * np.sin(np.pi * np.arange(period) / period)
+    lobes = np.r_[-lobe, lobe]
     x = np.tile(np.r_[np.tile(tooth, 58), lobes], revs)
     x = 0.65 * np.tanh(4.0 * x) / np.tanh(4.0)
     x += np.random.default_rng(0).normal(0.0, 0.003, len(x))
